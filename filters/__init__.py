@@ -6,6 +6,6 @@ compose in a :class:`~filters.chain.FilterChain`; the last link yields the physi
 density used by the finite-element model. This package never imports ``topopt``.
 """
 
-from filters.chain import Filter, FilterChain
+from filters.chain import Filter, FilterChain, FixedValues
 
-__all__ = ["Filter", "FilterChain"]
+__all__ = ["Filter", "FilterChain", "FixedValues"]

@@ -51,3 +51,32 @@ class FilterChain:
         for link in reversed(self.links):
             d = link.backward(d)
         return d
+
+
+class FixedValues:
+    """Hold some entries at fixed values (passive solid = 1, passive void = 0).
+
+    Parameters
+    ----------
+    solid, void : ndarray of bool
+        Entries forced to 1 and to 0; their derivative is zero.
+
+    Examples
+    --------
+    >>> f = FixedValues(np.array([True, False]), np.array([False, False]))
+    >>> f.forward(np.array([0.2, 0.2])).tolist()
+    [1.0, 0.2]
+    """
+
+    def __init__(self, solid: np.ndarray, void: np.ndarray):
+        self.solid = np.asarray(solid, dtype=bool)
+        self.void = np.asarray(void, dtype=bool)
+        self.free = ~(self.solid | self.void)
+
+    def forward(self, x: np.ndarray) -> np.ndarray:
+        """Overwrite the fixed entries."""
+        return np.where(self.solid, 1.0, np.where(self.void, 0.0, x))
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        """Zero the derivative of the fixed entries."""
+        return np.where(self.free, dy, 0.0)

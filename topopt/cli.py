@@ -1,0 +1,92 @@
+"""The ``buttress`` command: ``main(argv=None)`` with one small module per subcommand.
+
+Each module in :mod:`topopt.commands` provides ``HELP`` (one line), ``add_arguments(parser)``
+and ``run(args) -> int``. Errors caused by input (``ValueError``, ``TypeError``,
+``OSError``) are printed as one line and give exit code 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import os
+import sys
+
+#: Subcommand name -> module implementing it.
+COMMANDS: dict[str, str] = {
+    "optimize": "topopt.commands.optimize",
+}
+
+
+def version_text() -> str:
+    """Version, the solver ``auto`` would use and the BLAS libraries in use."""
+    from topopt import __version__
+    from topopt.solvers import blas_info, cholmod_available, cholmod_blas
+
+    if cholmod_available():
+        solver = f"cholmod (scikit-sparse; CHOLMOD linked to {cholmod_blas()})"
+    else:
+        solver = "scipy (SuperLU; CHOLMOD not installed: `make test` or `make demo` tries to install it)"
+    return (
+        f"buttress {__version__}\n"
+        f"direct solver: {solver}\n"
+        f"numpy BLAS: {blas_info()}\n"
+        f"python: {sys.version.split()[0]}"
+    )
+
+
+class _VersionAction(argparse.Action):
+    def __init__(self, option_strings, dest, **kwargs):
+        super().__init__(option_strings, dest, nargs=0, help="show version, solver and BLAS, then exit")
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        print(version_text())
+        parser.exit(0)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser with every registered subcommand."""
+    parser = argparse.ArgumentParser(
+        prog="buttress",
+        description="Support-aware topology optimisation for laser powder-bed fusion.",
+        epilog="Results are a design aid; verify the final part with a full analysis and "
+        "physical tests.",
+    )
+    parser.add_argument("--version", action=_VersionAction)
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name, module_name in COMMANDS.items():
+        module = importlib.import_module(module_name)
+        p = sub.add_parser(name, help=module.HELP, description=module.__doc__)
+        module.add_arguments(p)
+        p.set_defaults(_run=module.run)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "_run", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args._run(args) or 0)
+    except KeyboardInterrupt:
+        print("buttress: interrupted", file=sys.stderr)
+        return 130
+    except (ValueError, TypeError, OSError) as exc:
+        if os.environ.get("BUTTRESS_DEBUG"):
+            raise
+        print(f"buttress: error: {_one_line(exc)}", file=sys.stderr)
+        return 2
+
+
+def _one_line(exc: BaseException) -> str:
+    text = str(exc).strip() or type(exc).__name__
+    if isinstance(exc, OSError) and exc.filename and str(exc.filename) not in text:
+        text = f"{exc.filename}: {text}"
+    return " ".join(text.split())
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

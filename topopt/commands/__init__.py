@@ -1,0 +1,1 @@
+"""One module per ``buttress`` subcommand (``HELP``, ``add_arguments``, ``run``)."""

@@ -1,0 +1,188 @@
+"""The optimisation loop: design -> filters -> SIMP -> FE -> sensitivities -> update.
+
+One iteration: the filter chain maps design variables to the physical (printed)
+density; the FE model gives compliance and its gradient with respect to the physical
+density; the chain's ``backward`` carries it (and the volume gradient) back to the
+design variables; the optimiser updates the design. The loop records a history row
+per iteration and hands its state to an optional ``checkpoint`` callable so a run can be
+resumed; it knows nothing about files.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from filters.chain import FilterChain, FixedValues
+from filters.density import density_filter
+from topopt.objective import ComplianceModel, grey_level, volume_fraction
+from topopt.optimizers import oc_update
+
+HISTORY_COLUMNS = ("iteration", "compliance", "volume_fraction", "change", "grey_level", "elapsed_s")
+
+
+@dataclass(frozen=True, eq=False)
+class Result:
+    """Outcome of an optimisation run."""
+
+    density: np.ndarray = field(repr=False)
+    design: np.ndarray = field(repr=False)
+    history: tuple[dict, ...] = field(repr=False)
+    converged: bool
+    message: str
+    compliance: float
+    volume_fraction: float
+    iterations: int
+    elapsed_s: float
+    solver: str = ""
+    grey_level: float = float("nan")
+
+
+def build_filter_chain(problem) -> FilterChain:
+    """The chain from design variables to physical density for ``problem``.
+
+    Order: density filter, (projection), passive values, (printability filter last,
+    so the physical density is what prints).
+    """
+    grid = problem.grid
+    links = [
+        density_filter(grid.shape, radius=problem.optimize.filter_radius, element_size=grid.element_size)
+    ]
+    # -- projection link (inserted here when [optimize.projection] is set) --
+    links.append(FixedValues(problem.passive_solid, problem.passive_void))
+    # -- printability link (appended here when build.direction != "none") --
+    return FilterChain(links)
+
+
+def initial_design(problem) -> np.ndarray:
+    """Uniform design meeting the volume fraction, passive elements at 0 / 1."""
+    solid, void = problem.passive_solid, problem.passive_void
+    free = ~(solid | void)
+    n = solid.size
+    value = (problem.optimize.volume_fraction * n - solid.sum()) / free.sum()
+    x = np.where(solid, 1.0, 0.0)
+    x[free] = np.clip(value, 0.0, 1.0)
+    return x
+
+
+def optimize(
+    problem,
+    *,
+    progress: bool = False,
+    resume: Mapping | None = None,
+    checkpoint: Callable[[dict], None] | None = None,
+    solver: str | None = None,
+) -> Result:
+    """Minimise compliance (summed over load cases) subject to the volume fraction.
+
+    Parameters
+    ----------
+    problem : Problem
+        A validated problem (see :func:`topopt.load_problem`).
+    progress : bool
+        Show a progress bar with iteration, compliance, volume fraction and change.
+    resume : mapping, optional
+        A state previously given to ``checkpoint``; the run continues from it.
+    checkpoint : callable, optional
+        Called with the loop state (``design``, ``iteration``, ``history``) every
+        ``problem.optimize.checkpoint_every`` iterations and when interrupted.
+    solver : str, optional
+        Overrides the problem's solver setting.
+
+    Returns
+    -------
+    Result
+    """
+    settings = problem.optimize
+    model = ComplianceModel(problem, solver=solver)
+    chain = build_filter_chain(problem)
+    active = ~(problem.passive_solid | problem.passive_void)
+    n = active.size
+    unit_volume_gradient = np.full(problem.grid.shape, 1.0 / n)
+
+    x = initial_design(problem)
+    history: list[dict] = []
+    start_iteration = 0
+    elapsed_before = 0.0
+    if resume is not None:
+        x = np.asarray(resume["design"], dtype=float).reshape(problem.grid.shape)
+        history = [dict(row) for row in resume["history"]]
+        start_iteration = int(resume["iteration"])
+        elapsed_before = float(history[-1]["elapsed_s"]) if history else 0.0
+
+    t0 = time.perf_counter() - elapsed_before
+    converged = False
+    message = f"stopped at max_iterations = {settings.max_iterations}"
+    bar = _progress_bar(progress, settings.max_iterations, start_iteration)
+
+    def state(iteration: int) -> dict:
+        return {"design": x, "iteration": iteration, "history": history}
+
+    iteration = start_iteration
+    try:
+        while iteration < settings.max_iterations:
+            physical = chain.forward(x)
+            ev = model.evaluate(physical)
+            dc = chain.backward(ev.gradient)
+            dv = chain.backward(unit_volume_gradient)
+            vol = volume_fraction(physical)
+            x_new = oc_update(
+                x, dc, dv, volume=vol, volume_fraction=settings.volume_fraction,
+                move=settings.move_limit, active=active,
+            )
+            change = float(np.max(np.abs(x_new - x)))
+            x = x_new
+            iteration += 1
+            row = {
+                "iteration": iteration,
+                "compliance": ev.compliance,
+                "volume_fraction": vol,
+                "change": change,
+                "grey_level": grey_level(physical),
+                "elapsed_s": time.perf_counter() - t0,
+            }
+            history.append(row)
+            if bar is not None:
+                bar.update(1)
+                bar.set_postfix(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
+            if change < settings.change_tolerance:
+                converged = True
+                message = f"converged: largest design change {change:.4g} < {settings.change_tolerance}"
+                break
+            if checkpoint is not None and iteration % settings.checkpoint_every == 0:
+                checkpoint(state(iteration))
+    except KeyboardInterrupt:
+        if checkpoint is not None:
+            checkpoint(state(iteration))
+        raise
+    finally:
+        if bar is not None:
+            bar.close()
+
+    physical = chain.forward(x)
+    final = model.evaluate(physical)
+    return Result(
+        density=physical,
+        design=x,
+        history=tuple(history),
+        converged=converged,
+        message=message,
+        compliance=final.compliance,
+        volume_fraction=volume_fraction(physical),
+        iterations=iteration,
+        elapsed_s=time.perf_counter() - t0,
+        solver=model.solver.name,
+        grey_level=grey_level(physical),
+    )
+
+
+def _progress_bar(show: bool, total: int, initial: int):
+    if not show:
+        return None
+    from tqdm import tqdm
+
+    return tqdm(total=total, initial=initial, desc="optimising", unit="it", dynamic_ncols=True,
+                mininterval=0.5)

@@ -1,0 +1,221 @@
+"""Writers for the results folder: summary, arrays, history, picture, VTU.
+
+Every file is written atomically (to a temporary name in the same folder, then
+renamed), so an interrupted run never leaves a half-written result.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+import tempfile
+from collections.abc import Callable, Iterable
+from pathlib import Path
+
+import numpy as np
+
+CAUTION = (
+    "Results are a design aid: verify the final part with a full analysis and physical "
+    "tests, and defer to applicable codes, standards and licensed engineering practice."
+)
+
+
+def atomic_write(path: str | Path, write: Callable[[io.BufferedWriter], None]) -> None:
+    """Write a file by calling ``write(handle)`` on a temporary file, then rename it."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            write(handle)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def write_text(path: str | Path, text: str) -> None:
+    """Write UTF-8 text atomically."""
+    atomic_write(path, lambda h: h.write(text.encode("utf-8")))
+
+
+def write_json(path: str | Path, data: dict) -> None:
+    """Write JSON atomically (NaN written as null)."""
+    write_text(path, json.dumps(_jsonable(data), indent=2) + "\n")
+
+
+def _jsonable(value):
+    if isinstance(value, dict):
+        return {k: _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, (np.floating, float)):
+        return None if not np.isfinite(value) else float(value)
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, np.bool_):
+        return bool(value)
+    return value
+
+
+def write_csv(path: str | Path, rows: Iterable[dict], columns: list[str]) -> None:
+    """Write rows (dicts) as CSV with the given columns, atomically."""
+    buf = io.StringIO()
+    writer = csv.DictWriter(buf, fieldnames=columns, extrasaction="ignore", lineterminator="\n")
+    writer.writeheader()
+    for row in rows:
+        writer.writerow({k: ("" if row.get(k) is None else row.get(k)) for k in columns})
+    write_text(path, buf.getvalue())
+
+
+def write_npz(path: str | Path, **arrays: np.ndarray) -> None:
+    """Write arrays to an uncompressed .npz atomically (no pickled objects)."""
+    atomic_write(path, lambda h: np.savez(h, **{k: np.asarray(v) for k, v in arrays.items()}))
+
+
+def summary_dict(result, problem) -> dict:
+    """The ``summary.json`` contents for a result of ``problem``."""
+    from topopt import __version__
+
+    summary = {
+        "name": problem.name,
+        "compliance": result.compliance,
+        "volume_fraction": result.volume_fraction,
+        "iterations": result.iterations,
+        "converged": result.converged,
+        "message": result.message,
+        "build_direction": problem.build.direction,
+        "overhang_angle": problem.build.overhang_angle,
+        "grey_level": result.grey_level,
+        "elapsed_s": result.elapsed_s,
+        "solver": result.solver,
+        "shape": list(problem.grid.shape),
+        "element_size": problem.grid.element_size,
+        "version": __version__,
+        "caution": CAUTION,
+    }
+    # -- print-preparation fields (unsupported_elements, overhang_area) are added here --
+    return summary
+
+
+def history_columns(history: Iterable[dict]) -> list[str]:
+    """Column names of a history, in first-seen order."""
+    columns: list[str] = []
+    for row in history:
+        for k in row:
+            if k not in columns:
+                columns.append(k)
+    return columns
+
+
+def write_results(result, problem, out_dir: str | Path, *, formats: Iterable[str] | None = None) -> Path:
+    """Write the results folder of a run.
+
+    Parameters
+    ----------
+    result : Result
+        From :func:`topopt.optimize`.
+    problem : Problem
+        The problem that was solved; a copy is written as ``problem.toml``.
+    out_dir : str or Path
+        The folder (created if missing).
+    formats : iterable of str, optional
+        Pictures and meshes to write; default all that apply (``png``, ``vtu``, ``stl``).
+    """
+    from topopt.problem import to_toml
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    write_text(out / "problem.toml", to_toml(problem.source))
+    write_npz(out / "result.npz", density=result.density, design=result.design)
+    write_csv(out / "history.csv", result.history, history_columns(result.history))
+    formats = set(formats) if formats is not None else set(WRITERS)
+    for name, writer in WRITERS.items():
+        if name in formats:
+            writer(out / f"design.{name}", result.density, problem)
+    # summary last: its presence marks a finished run.
+    write_json(out / "summary.json", summary_dict(result, problem))
+    return out
+
+
+def write_png(path: str | Path, density: np.ndarray, problem) -> None:
+    """Picture of the design: an image in 2D, a rendered 0.5 surface in 3D."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    grid = problem.grid
+    fig = plt.figure(figsize=(7, 4.6), dpi=120)
+    if grid.dim == 2:
+        ax = fig.add_subplot(111)
+        draw_design_2d(ax, density, grid.element_size)
+    else:
+        ax = fig.add_subplot(111, projection="3d")
+        draw_design_3d(ax, density, grid.element_size)
+    ax.set_title(f"{problem.name}  (build direction: {problem.build.direction})", fontsize=9)
+    fig.text(0.01, 0.01, CAUTION, fontsize=5.5, wrap=True, color="0.35")
+    atomic_write(path, lambda h: fig.savefig(h, format="png"))
+    plt.close(fig)
+
+
+def draw_design_2d(ax, density: np.ndarray, element_size: float) -> None:
+    """Draw a 2D density field (x to the right, y up) in length units."""
+    nx, ny = density.shape
+    ax.imshow(density.T, origin="lower", cmap="gray_r", vmin=0.0, vmax=1.0,
+              extent=(0, nx * element_size, 0, ny * element_size), interpolation="nearest")
+    ax.set_aspect("equal")
+    ax.set_xlabel("x")
+    ax.set_ylabel("y")
+
+
+def draw_design_3d(ax, density: np.ndarray, element_size: float) -> None:
+    """Draw the 0.5 surface of a 3D density field with simple shading."""
+    from mpl_toolkits.mplot3d.art3d import Poly3DCollection
+    from skimage import measure
+
+    padded = np.pad(density, 1, mode="constant")
+    if padded.max() <= 0.5:
+        ax.text2D(0.3, 0.5, "no solid at the 0.5 level", transform=ax.transAxes)
+        return
+    verts, faces, normals, _ = measure.marching_cubes(padded, 0.5, spacing=(element_size,) * 3)
+    verts -= element_size * 0.5  # padding and element centres
+    light = np.array([0.3, -0.5, 0.8]) / np.linalg.norm([0.3, -0.5, 0.8])
+    face_normals = normals[faces].mean(axis=1)
+    face_normals /= np.linalg.norm(face_normals, axis=1, keepdims=True) + 1e-12
+    shade = 0.35 + 0.65 * np.clip(-face_normals @ light, 0, 1)
+    colors = np.column_stack([shade * 0.55, shade * 0.65, shade * 0.8, np.ones_like(shade)])
+    mesh = Poly3DCollection(verts[faces], facecolors=colors, linewidths=0)
+    ax.add_collection3d(mesh)
+    size = np.array(density.shape) * element_size
+    ax.set_xlim(0, size[0])
+    ax.set_ylim(0, size[1])
+    ax.set_zlim(0, size[2])
+    ax.set_box_aspect(size)
+    ax.set_xlabel("x")
+    ax.set_ylabel("y")
+    ax.set_zlabel("z")
+
+
+def write_vtu(path: str | Path, density: np.ndarray, problem) -> None:
+    """VTK unstructured grid with one quad / hexahedron per element and its density."""
+    import meshio
+
+    grid = problem.grid
+    points = grid.node_coordinates()
+    if grid.dim == 2:
+        points = np.column_stack([points, np.zeros(len(points))])
+    cell_type = "quad" if grid.dim == 2 else "hexahedron"
+    mesh = meshio.Mesh(points, [(cell_type, grid.element_nodes)],
+                       cell_data={"density": [np.asarray(density, dtype=float).ravel()]})
+    # meshio picks the format from the suffix, so write to a .vtu temporary name.
+    tmp = Path(path).with_name(f".{Path(path).stem}.partial.vtu")
+    meshio.write(tmp, mesh, file_format="vtu")
+    os.replace(tmp, path)
+
+
+#: Picture and mesh writers by file suffix; more (e.g. ``stl``) register here.
+WRITERS: dict[str, Callable] = {"png": write_png, "vtu": write_vtu}

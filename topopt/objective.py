@@ -1,0 +1,108 @@
+"""Compliance over load cases and volume, with sensitivities.
+
+Modified SIMP: E(rho) = E * (void + (1 - void) * rho**p). For a load case with force
+f and displacement u, compliance is f.u = u^T K u, and its derivative with respect to
+the physical density of element e is -dE_e/drho * u_e^T K0_e u_e (K0_e: the element
+matrix of solid material), because the loads do not depend on the design
+(Bendsoe & Sigmund 2003, ch. 1).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from topopt.assembly import Assembler
+from topopt.elements import element_stiffness
+from topopt.solvers import make_solver
+
+
+def simp_modulus(rho: np.ndarray, *, penalty: float, void_stiffness: float) -> np.ndarray:
+    """Relative modulus E(rho)/E of modified SIMP.
+
+    Examples
+    --------
+    >>> simp_modulus(np.array([0.0, 1.0]), penalty=3.0, void_stiffness=1e-9).tolist()
+    [1e-09, 1.0]
+    """
+    return void_stiffness + (1.0 - void_stiffness) * rho**penalty
+
+
+def simp_modulus_derivative(rho: np.ndarray, *, penalty: float, void_stiffness: float) -> np.ndarray:
+    """Derivative of :func:`simp_modulus` with respect to rho."""
+    return (1.0 - void_stiffness) * penalty * rho ** (penalty - 1.0)
+
+
+@dataclass
+class Evaluation:
+    """Compliance of one physical density field."""
+
+    compliance: float
+    case_compliance: np.ndarray
+    gradient: np.ndarray
+    displacements: np.ndarray
+
+
+class ComplianceModel:
+    """The finite-element model of a problem: assembly, solver and loads, built once.
+
+    Parameters
+    ----------
+    problem : Problem
+        A validated problem.
+    solver : str, optional
+        Overrides ``problem.optimize.solver``.
+    """
+
+    def __init__(self, problem, *, solver: str | None = None):
+        grid = problem.grid
+        self.problem = problem
+        self.grid = grid
+        self.penalty = problem.optimize.penalty
+        self.void_stiffness = problem.material.void_stiffness
+        self.element_matrix = element_stiffness(
+            grid.dim,
+            youngs_modulus=problem.material.youngs_modulus,
+            poisson_ratio=problem.material.poisson_ratio,
+            element_size=grid.element_size,
+            thickness=grid.thickness,
+        )
+        self.free = problem.free_dofs()
+        self.assembler = Assembler(grid, self.element_matrix, self.free)
+        self.forces = problem.load_vectors()
+        self.solver = make_solver(solver or problem.optimize.solver, grid=grid, free_dofs=self.free)
+
+    def displacements(self, physical: np.ndarray) -> np.ndarray:
+        """Global displacements for every load case, shape (n_dofs, n_cases)."""
+        moduli = simp_modulus(physical.ravel(), penalty=self.penalty, void_stiffness=self.void_stiffness)
+        K = self.assembler.assemble(moduli)
+        U = np.zeros_like(self.forces)
+        U[self.free] = self.solver.solve(K, self.forces[self.free]).reshape(self.free.size, -1)
+        return U
+
+    def element_energy(self, U: np.ndarray) -> np.ndarray:
+        """u_e^T K0_e u_e per element and load case, shape (n_elements, n_cases)."""
+        ue = U[self.grid.element_dofs]  # (n_el, nd, n_cases)
+        return np.einsum("eic,ij,ejc->ec", ue, self.element_matrix, ue)
+
+    def evaluate(self, physical: np.ndarray) -> Evaluation:
+        """Compliance summed over load cases and its gradient in grid shape."""
+        rho = np.asarray(physical, dtype=float)
+        U = self.displacements(rho)
+        case_c = np.einsum("dc,dc->c", self.forces, U)
+        energy = self.element_energy(U).sum(axis=1)
+        dE = simp_modulus_derivative(rho.ravel(), penalty=self.penalty, void_stiffness=self.void_stiffness)
+        gradient = (-dE * energy).reshape(rho.shape)
+        return Evaluation(float(case_c.sum()), case_c, gradient, U)
+
+
+def volume_fraction(physical: np.ndarray) -> float:
+    """Mean physical density over all elements (passive ones included)."""
+    return float(np.mean(physical))
+
+
+def grey_level(physical: np.ndarray) -> float:
+    """Share of elements with 0.1 < rho < 0.9 (a non-discreteness measure; cf. Sigmund 2007)."""
+    rho = np.asarray(physical)
+    return float(np.mean((rho > 0.1) & (rho < 0.9)))

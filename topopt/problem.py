@@ -1,0 +1,628 @@
+"""Problem files: load a TOML file, validate every key, return a frozen :class:`Problem`.
+
+Every mistake in a file raises :class:`ProblemError` with one line naming the file,
+the key and what is expected; the command line turns it into exit code 2. The schema is
+the one documented in README.md ("Problem file reference").
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+import tomllib
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from topopt.grid import AXES, Grid
+
+DIRECTIONS_2D = ("+x", "-x", "+y", "-y")
+DIRECTIONS_3D = DIRECTIONS_2D + ("+z", "-z")
+
+
+class ProblemError(ValueError):
+    """A problem file (or dict) that cannot be used; the message is one line."""
+
+
+@dataclass(frozen=True)
+class Material:
+    """Isotropic linear-elastic solid and the SIMP void stiffness."""
+
+    youngs_modulus: float
+    poisson_ratio: float
+    void_stiffness: float = 1e-9
+    mass_density: float | None = None
+
+
+@dataclass(frozen=True)
+class Restraint:
+    """Zero displacement of the listed components on the selected nodes."""
+
+    where: Mapping
+    fix: tuple[str, ...]
+    nodes: np.ndarray = field(repr=False, compare=False)
+
+
+@dataclass(frozen=True)
+class Load:
+    """A total force split equally over the selected nodes, in load case ``case``."""
+
+    where: Mapping
+    force: tuple[float, ...]
+    case: str
+    nodes: np.ndarray = field(repr=False, compare=False)
+
+
+@dataclass(frozen=True)
+class Projection:
+    """Heaviside projection settings (used when ``[optimize.projection]`` is present)."""
+
+    beta_start: float = 1.0
+    beta_max: float = 32.0
+    eta: float = 0.5
+    every: int = 40
+
+
+@dataclass(frozen=True)
+class OptimizeSettings:
+    """Settings of the optimisation loop."""
+
+    volume_fraction: float
+    filter_radius: float
+    penalty: float = 3.0
+    method: str = "oc"
+    max_iterations: int = 200
+    change_tolerance: float = 0.01
+    move_limit: float = 0.2
+    solver: str = "auto"
+    checkpoint_every: int = 10
+    projection: Projection | None = None
+    min_member_size: float | None = None
+
+
+@dataclass(frozen=True)
+class BuildSettings:
+    """Build direction (``"none"`` switches the printability filter off) and overhang angle."""
+
+    direction: str = "none"
+    overhang_angle: float = 45.0
+
+
+@dataclass(frozen=True)
+class ProcessSettings:
+    """Print-preparation estimates. Defaults are typical magnitudes for mm, not machine data."""
+
+    layer_thickness: float = 0.03
+    recoat_time_s: float = 10.0
+    part_rate: float = 10000.0
+    support_rate: float = 30000.0
+    support_fill: float = 0.2
+    overhead_h: float = 1.0
+    powder_price: float = 0.1
+    tool_access: float = 2.0
+
+
+@dataclass(frozen=True, eq=False)
+class Problem:
+    """A validated optimisation problem. Build variants with :func:`with_settings`."""
+
+    name: str
+    grid: Grid
+    material: Material
+    restraints: tuple[Restraint, ...]
+    loads: tuple[Load, ...]
+    passive_solid: np.ndarray = field(repr=False)
+    passive_void: np.ndarray = field(repr=False)
+    optimize: OptimizeSettings = field(repr=False)
+    build: BuildSettings = field(default_factory=BuildSettings)
+    process: ProcessSettings = field(default_factory=ProcessSettings)
+    source: Mapping = field(default_factory=dict, repr=False)
+    path: str = "<problem>"
+
+    @property
+    def load_cases(self) -> tuple[str, ...]:
+        """Names of the load cases in order of first appearance."""
+        seen: list[str] = []
+        for load in self.loads:
+            if load.case not in seen:
+                seen.append(load.case)
+        return tuple(seen)
+
+    def load_vectors(self) -> np.ndarray:
+        """Global force vectors, shape (n_dofs, n_cases)."""
+        cases = self.load_cases
+        F = np.zeros((self.grid.n_dofs, len(cases)))
+        d = self.grid.dim
+        for load in self.loads:
+            c = cases.index(load.case)
+            per_node = np.asarray(load.force) / load.nodes.size
+            for a in range(d):
+                np.add.at(F[:, c], load.nodes * d + a, per_node[a])
+        return F
+
+    def fixed_dofs(self) -> np.ndarray:
+        """Sorted unique restrained dof numbers."""
+        d = self.grid.dim
+        dofs = [r.nodes * d + AXES.index(a) for r in self.restraints for a in r.fix]
+        return np.unique(np.concatenate(dofs))
+
+    def free_dofs(self) -> np.ndarray:
+        """Dofs left in the system after removing the restrained ones."""
+        return np.setdiff1d(np.arange(self.grid.n_dofs), self.fixed_dofs())
+
+
+# ---------------------------------------------------------------------------- helpers
+
+
+class _Reader:
+    """Typed look-ups in a TOML table that report errors as FILE: key: expected ..."""
+
+    def __init__(self, source: str):
+        self.source = source
+
+    def fail(self, key: str, message: str) -> ProblemError:
+        return ProblemError(f"{self.source}: {key}: {message}")
+
+    def table(self, data: Mapping, key: str, allowed: set[str], *, required: bool = True) -> dict:
+        value = _get(data, key)
+        if value is None:
+            if required:
+                raise self.fail(key, "missing table; expected a [" + key + "] table")
+            return {}
+        if not isinstance(value, Mapping):
+            raise self.fail(key, f"expected a table, got {_kind(value)}")
+        self.no_unknown(value, key, allowed)
+        return dict(value)
+
+    def no_unknown(self, value: Mapping, key: str, allowed: set[str]) -> None:
+        for k in value:
+            if k not in allowed:
+                name = f"{key}.{k}" if key else k
+                raise self.fail(name, f"unknown key; expected one of {', '.join(sorted(allowed))}")
+
+    def number(self, table: Mapping, key: str, name: str, *, default: Any = ..., low=None,
+               high=None, low_open=False, high_open=False, integer=False) -> Any:
+        if key not in table:
+            if default is ...:
+                raise self.fail(name, "missing; expected a number")
+            return default
+        v = table[key]
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            raise self.fail(name, f"expected a {'whole number' if integer else 'number'}, got {_kind(v)}")
+        if integer and not isinstance(v, int):
+            raise self.fail(name, f"expected a whole number, got {v!r}")
+        if not math.isfinite(v):
+            raise self.fail(name, f"expected a finite number, got {v!r}")
+        lo_bad = low is not None and (v <= low if low_open else v < low)
+        hi_bad = high is not None and (v >= high if high_open else v > high)
+        if lo_bad or hi_bad:
+            lo = "-inf" if low is None else low
+            hi = "inf" if high is None else high
+            interval = f"{'(' if low_open or low is None else '['}{lo}, {hi}{')' if high_open or high is None else ']'}"
+            raise self.fail(name, f"expected a number in {interval}, got {v!r}")
+        return int(v) if integer else float(v)
+
+    def string(self, table: Mapping, key: str, name: str, *, default: Any = ...,
+               choices: tuple[str, ...] | None = None) -> Any:
+        if key not in table:
+            if default is ...:
+                raise self.fail(name, "missing; expected a string")
+            return default
+        v = table[key]
+        if not isinstance(v, str):
+            raise self.fail(name, f"expected a string, got {_kind(v)}")
+        if choices is not None and v not in choices:
+            raise self.fail(name, f"expected one of {', '.join(repr(c) for c in choices)}, got {v!r}")
+        return v
+
+    def numbers(self, value: Any, name: str, *, length: int | None = None) -> list[float]:
+        if not isinstance(value, list) or any(
+            isinstance(v, bool) or not isinstance(v, (int, float)) for v in value
+        ):
+            raise self.fail(name, f"expected a list of numbers, got {_kind(value)}")
+        if length is not None and len(value) != length:
+            raise self.fail(name, f"expected {length} numbers, got {len(value)}")
+        if not all(math.isfinite(v) for v in value):
+            raise self.fail(name, "expected finite numbers")
+        return [float(v) for v in value]
+
+
+def _get(data: Mapping, key: str) -> Any:
+    value: Any = data
+    for part in key.split("."):
+        if not isinstance(value, Mapping) or part not in value:
+            return None
+        value = value[part]
+    return value
+
+
+def _kind(value: Any) -> str:
+    if isinstance(value, bool):
+        return f"a boolean ({str(value).lower()})"
+    if isinstance(value, Mapping):
+        return "a table"
+    if isinstance(value, list):
+        return "a list"
+    if isinstance(value, str):
+        return f"a string ({value!r})"
+    return f"{type(value).__name__} {value!r}"
+
+
+def _region(r: _Reader, value: Any, name: str, dim: int) -> dict:
+    if not isinstance(value, Mapping):
+        raise r.fail(name, f"expected a table such as {{ x = [0.0, 0.0] }}, got {_kind(value)}")
+    allowed = set(AXES[:dim]) | {"center", "radius"} | ({"axis"} if dim == 3 else set())
+    r.no_unknown(value, name, allowed)
+    region: dict[str, Any] = {}
+    for axis in AXES[:dim]:
+        if axis in value:
+            lo, hi = r.numbers(value[axis], f"{name}.{axis}", length=2)
+            if lo > hi:
+                raise r.fail(f"{name}.{axis}", f"expected [low, high] with low <= high, got {[lo, hi]}")
+            region[axis] = [lo, hi]
+    if ("center" in value) != ("radius" in value):
+        raise r.fail(name, "a disk or cylinder needs both center and radius")
+    if "center" in value:
+        n_center = 2 if dim == 2 else (2, 3)
+        center = r.numbers(value["center"], f"{name}.center")
+        if (dim == 2 and len(center) != 2) or (dim == 3 and len(center) not in (2, 3)):
+            raise r.fail(f"{name}.center", f"expected {n_center} coordinates, got {len(center)}")
+        region["center"] = center
+        region["radius"] = r.number(value, "radius", f"{name}.radius", low=0.0, low_open=True)
+        if dim == 3:
+            region["axis"] = r.string(value, "axis", f"{name}.axis", default="z", choices=AXES)
+        elif "axis" in value:
+            raise r.fail(f"{name}.axis", "only 3D cylinders take an axis")
+    return region
+
+
+def _list_of_tables(r: _Reader, data: Mapping, key: str) -> list[Mapping]:
+    value = data.get(key, [])
+    if not isinstance(value, list) or not all(isinstance(v, Mapping) for v in value):
+        raise r.fail(key, f"expected an array of tables ([[{key}]]), got {_kind(value)}")
+    return value
+
+
+TOP_KEYS = {"name", "domain", "material", "restraints", "loads", "passive", "optimize", "build", "process"}
+OPTIMIZE_KEYS = {
+    "volume_fraction", "filter_radius", "penalty", "method", "max_iterations",
+    "change_tolerance", "move_limit", "solver", "checkpoint_every", "projection",
+    "min_member_size",
+}
+METHODS = ("oc", "mma")
+
+
+def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
+    """Validate a parsed problem table and build a :class:`Problem`.
+
+    Parameters
+    ----------
+    data : mapping
+        The parsed TOML document.
+    source : str
+        Name used in error messages (normally the file path).
+
+    Raises
+    ------
+    ProblemError
+        One line naming ``source``, the key and what is expected.
+
+    Examples
+    --------
+    >>> p = problem_from_dict({
+    ...     "domain": {"shape": [4, 2], "element_size": 1.0},
+    ...     "material": {"youngs_modulus": 1.0, "poisson_ratio": 0.3},
+    ...     "restraints": [{"where": {"x": [0.0, 0.0]}, "fix": ["x", "y"]}],
+    ...     "loads": [{"where": {"x": [4.0, 4.0], "y": [0.0, 0.0]}, "force": [0.0, -1.0]}],
+    ...     "optimize": {"volume_fraction": 0.5},
+    ... })
+    >>> p.grid.shape, p.load_cases
+    ((4, 2), ('default',))
+    """
+    r = _Reader(source)
+    if not isinstance(data, Mapping):
+        raise r.fail("(top level)", "expected a TOML document")
+    r.no_unknown(data, "", TOP_KEYS)
+    name = r.string(data, "name", "name", default=Path(source).stem)
+
+    dom = r.table(data, "domain", {"shape", "element_size", "thickness"})
+    shape_raw = dom.get("shape")
+    if (
+        not isinstance(shape_raw, list)
+        or len(shape_raw) not in (2, 3)
+        or any(isinstance(n, bool) or not isinstance(n, int) for n in shape_raw)
+    ):
+        raise r.fail("domain.shape", f"expected 2 or 3 whole numbers such as [120, 60], got {shape_raw!r}")
+    if any(n < 1 for n in shape_raw):
+        raise r.fail("domain.shape", f"expected positive element counts, got {shape_raw!r}")
+    if int(np.prod(shape_raw)) > 50_000_000:
+        raise r.fail("domain.shape", f"expected at most 5e7 elements, got {int(np.prod(shape_raw))}")
+    dim = len(shape_raw)
+    h = r.number(dom, "element_size", "domain.element_size", low=0.0, low_open=True)
+    if dim == 3 and "thickness" in dom:
+        raise r.fail("domain.thickness", "only 2D domains take a thickness")
+    thickness = r.number(dom, "thickness", "domain.thickness", default=1.0, low=0.0, low_open=True)
+    grid = Grid(tuple(shape_raw), h, thickness)
+
+    mat = r.table(data, "material", {"youngs_modulus", "poisson_ratio", "void_stiffness", "mass_density"})
+    material = Material(
+        youngs_modulus=r.number(mat, "youngs_modulus", "material.youngs_modulus", low=0.0, low_open=True),
+        poisson_ratio=r.number(mat, "poisson_ratio", "material.poisson_ratio", low=-1.0,
+                               high=0.5, low_open=True, high_open=True),
+        void_stiffness=r.number(mat, "void_stiffness", "material.void_stiffness", default=1e-9,
+                                low=0.0, high=1.0, low_open=True, high_open=True),
+        mass_density=r.number(mat, "mass_density", "material.mass_density", default=None,
+                              low=0.0, low_open=True),
+    )
+
+    restraints = []
+    items = _list_of_tables(r, data, "restraints")
+    if not items:
+        raise r.fail("restraints", "no restraint given; expected at least one [[restraints]] table")
+    for i, item in enumerate(items):
+        key = f"restraints[{i}]"
+        r.no_unknown(item, key, {"where", "fix"})
+        if "where" not in item:
+            raise r.fail(f"{key}.where", "missing; expected a region such as { x = [0.0, 0.0] }")
+        where = _region(r, item["where"], f"{key}.where", dim)
+        fix = item.get("fix", list(AXES[:dim]))
+        if not isinstance(fix, list) or not fix or any(f not in AXES[:dim] for f in fix):
+            raise r.fail(f"{key}.fix", f"expected a list of {list(AXES[:dim])}, got {fix!r}")
+        nodes = grid.select_nodes(where)
+        if nodes.size == 0:
+            raise r.fail(f"{key}.where", f"selects no node; the domain spans {_extent(grid)}")
+        restraints.append(Restraint(where, tuple(dict.fromkeys(fix)), nodes))
+    fixed_axes = {a for rr in restraints for a in rr.fix}
+    if len(fixed_axes) < dim:
+        missing = sorted(set(AXES[:dim]) - fixed_axes)
+        raise r.fail("restraints", f"no restraint in {', '.join(missing)}; the part could move freely")
+
+    loads = []
+    items = _list_of_tables(r, data, "loads")
+    if not items:
+        raise r.fail("loads", "no load given; expected at least one [[loads]] table")
+    for i, item in enumerate(items):
+        key = f"loads[{i}]"
+        r.no_unknown(item, key, {"where", "force", "case"})
+        if "where" not in item:
+            raise r.fail(f"{key}.where", "missing; expected a region")
+        if "force" not in item:
+            raise r.fail(f"{key}.force", f"missing; expected {dim} force components")
+        where = _region(r, item["where"], f"{key}.where", dim)
+        force = r.numbers(item["force"], f"{key}.force", length=dim)
+        case = r.string(item, "case", f"{key}.case", default="default")
+        nodes = grid.select_nodes(where)
+        if nodes.size == 0:
+            raise r.fail(f"{key}.where", f"selects no node (load outside the domain?); the domain spans {_extent(grid)}")
+        loads.append(Load(where, tuple(force), case, nodes))
+
+    solid = np.zeros(grid.shape, dtype=bool)
+    void = np.zeros(grid.shape, dtype=bool)
+    for i, item in enumerate(_list_of_tables(r, data, "passive")):
+        key = f"passive[{i}]"
+        r.no_unknown(item, key, {"where", "state"})
+        if "where" not in item:
+            raise r.fail(f"{key}.where", "missing; expected a region")
+        where = _region(r, item["where"], f"{key}.where", dim)
+        state = r.string(item, "state", f"{key}.state", choices=("solid", "void"))
+        mask = grid.select_elements(where)
+        if not mask.any():
+            raise r.fail(f"{key}.where", f"selects no element centre; the domain spans {_extent(grid)}")
+        # Later regions win, so a solid ring can be cut by a void hole listed after it.
+        if state == "solid":
+            solid |= mask
+            void &= ~mask
+        else:
+            void |= mask
+            solid &= ~mask
+
+    opt = r.table(data, "optimize", OPTIMIZE_KEYS)
+    vf = r.number(opt, "volume_fraction", "optimize.volume_fraction", low=0.0, high=1.0,
+                  low_open=True, high_open=True)
+    if (solid | void).all():
+        raise r.fail("passive", "passive regions cover every element; nothing is left to design")
+    n = grid.n_elements
+    if solid.sum() / n > vf:
+        raise r.fail("optimize.volume_fraction",
+                     f"{vf} is below the share of passive solid elements ({solid.sum() / n:.3f})")
+    if (n - void.sum()) / n < vf:
+        raise r.fail("optimize.volume_fraction",
+                     f"{vf} exceeds the share of elements outside passive void ({(n - void.sum()) / n:.3f})")
+    projection = None
+    if "projection" in opt:
+        pt = r.table(opt, "projection", {"beta_start", "beta_max", "eta", "every"})
+        projection = Projection(
+            beta_start=r.number(pt, "beta_start", "optimize.projection.beta_start", default=1.0,
+                                low=0.0, low_open=True),
+            beta_max=r.number(pt, "beta_max", "optimize.projection.beta_max", default=32.0,
+                              low=0.0, low_open=True),
+            eta=r.number(pt, "eta", "optimize.projection.eta", default=0.5, low=0.0, high=1.0,
+                         low_open=True, high_open=True),
+            every=r.number(pt, "every", "optimize.projection.every", default=40, low=1, integer=True),
+        )
+        if projection.beta_max < projection.beta_start:
+            raise r.fail("optimize.projection.beta_max", "expected beta_max >= beta_start")
+    optimize = OptimizeSettings(
+        volume_fraction=vf,
+        filter_radius=r.number(opt, "filter_radius", "optimize.filter_radius", default=1.5 * h,
+                               low=0.0, low_open=True),
+        penalty=r.number(opt, "penalty", "optimize.penalty", default=3.0, low=1.0, high=10.0),
+        method=r.string(opt, "method", "optimize.method", default="oc", choices=METHODS),
+        max_iterations=r.number(opt, "max_iterations", "optimize.max_iterations", default=200,
+                                low=1, high=100000, integer=True),
+        change_tolerance=r.number(opt, "change_tolerance", "optimize.change_tolerance",
+                                  default=0.01, low=0.0, high=1.0, low_open=True),
+        move_limit=r.number(opt, "move_limit", "optimize.move_limit", default=0.2, low=0.0,
+                            high=1.0, low_open=True),
+        solver=r.string(opt, "solver", "optimize.solver", default="auto"),
+        checkpoint_every=r.number(opt, "checkpoint_every", "optimize.checkpoint_every",
+                                  default=10, low=1, integer=True),
+        projection=projection,
+        min_member_size=r.number(opt, "min_member_size", "optimize.min_member_size",
+                                 default=None, low=0.0, low_open=True),
+    )
+    from topopt.solvers import SOLVERS
+
+    if optimize.solver not in set(SOLVERS) | {"auto"}:
+        raise r.fail("optimize.solver", f"expected one of {sorted(set(SOLVERS) | {'auto'})}, got {optimize.solver!r}")
+
+    bt = r.table(data, "build", {"direction", "overhang_angle"}, required=False)
+    directions = DIRECTIONS_2D if dim == 2 else DIRECTIONS_3D
+    build = BuildSettings(
+        direction=r.string(bt, "direction", "build.direction", default="none",
+                           choices=directions + ("none",)),
+        overhang_angle=r.number(bt, "overhang_angle", "build.overhang_angle", default=45.0,
+                                low=0.0, high=90.0, low_open=True, high_open=True),
+    )
+    _check_overhang_angle(r, build.overhang_angle)
+
+    pr = r.table(data, "process", set(ProcessSettings.__dataclass_fields__), required=False)
+    defaults = ProcessSettings()
+    process_values = {}
+    for key in ProcessSettings.__dataclass_fields__:
+        high = 1.0 if key == "support_fill" else None
+        low_open = key not in ("recoat_time_s", "overhead_h", "powder_price")
+        process_values[key] = r.number(pr, key, f"process.{key}", default=getattr(defaults, key),
+                                       low=0.0, high=high, low_open=low_open)
+    process = ProcessSettings(**process_values)
+
+    return Problem(
+        name=name, grid=grid, material=material, restraints=tuple(restraints),
+        loads=tuple(loads), passive_solid=solid, passive_void=void, optimize=optimize,
+        build=build, process=process, source=copy.deepcopy(dict(data)), path=source,
+    )
+
+
+def _check_overhang_angle(r: _Reader, angle: float) -> None:
+    """Reject angles the voxel grid cannot represent (rule owned by the printability filter)."""
+    try:
+        from filters.printability import enforced_overhang_angle
+    except ImportError:  # the filter module is optional during development
+        return
+    try:
+        enforced_overhang_angle(angle)
+    except ValueError as exc:
+        raise r.fail("build.overhang_angle", str(exc).splitlines()[0]) from None
+
+
+def _extent(grid: Grid) -> str:
+    return " x ".join(f"[0, {s:g}]" for s in grid.size) + " in " + ",".join(AXES[: grid.dim])
+
+
+def load_problem(path: str | Path) -> Problem:
+    """Read and validate a problem file.
+
+    Parameters
+    ----------
+    path : str or Path
+        A TOML problem file.
+
+    Raises
+    ------
+    ProblemError
+        If the file cannot be read, is not valid TOML, or fails validation.
+    """
+    path = Path(path)
+    try:
+        text = path.read_bytes().decode("utf-8")
+    except FileNotFoundError:
+        raise ProblemError(f"{path}: file not found") from None
+    except IsADirectoryError:
+        raise ProblemError(f"{path}: is a folder, expected a TOML problem file") from None
+    except UnicodeDecodeError:
+        raise ProblemError(f"{path}: not a UTF-8 text file") from None
+    except OSError as exc:
+        raise ProblemError(f"{path}: cannot be read ({exc.strerror})") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ProblemError(f"{path}: not valid TOML ({exc})") from None
+    return problem_from_dict(data, source=str(path))
+
+
+def with_settings(problem: Problem, settings: Mapping[str, Any]) -> Problem:
+    """A copy of ``problem`` with dotted keys replaced, validated again.
+
+    Examples
+    --------
+    >>> # with_settings(p, {"build.direction": "+y", "optimize.volume_fraction": 0.3})
+    """
+    data = copy.deepcopy(dict(problem.source))
+    for dotted, value in settings.items():
+        parts = dotted.split(".")
+        table = data
+        for part in parts[:-1]:
+            nxt = table.setdefault(part, {})
+            if not isinstance(nxt, dict):
+                raise ProblemError(f"{problem.path}: {dotted}: {part} is not a table")
+            table = nxt
+        table[parts[-1]] = value
+    return problem_from_dict(data, source=problem.path)
+
+
+# ---------------------------------------------------------------------------- writing
+
+
+def to_toml(data: Mapping) -> str:
+    """Write a problem table as TOML text (the subset problem files use).
+
+    Examples
+    --------
+    >>> print(to_toml({"name": "a", "build": {"direction": "+y"}}).strip())
+    name = "a"
+    <BLANKLINE>
+    [build]
+    direction = "+y"
+    """
+    lines: list[str] = []
+    _write_table(lines, "", data)
+    return "\n".join(lines).strip() + "\n"
+
+
+def _value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if not math.isfinite(v):
+            raise ValueError(f"cannot write non-finite number {v!r} to TOML")
+        return repr(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n") + '"'
+    if isinstance(v, list):
+        return "[" + ", ".join(_value(x) for x in v) + "]"
+    if isinstance(v, Mapping):
+        return "{ " + ", ".join(f"{_key(k)} = {_value(x)}" for k, x in v.items()) + " }"
+    if isinstance(v, tuple):
+        return _value(list(v))
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+def _key(k: str) -> str:
+    return k if k.replace("_", "").replace("-", "").isalnum() else _value(k)
+
+
+def _is_table_array(v: Any) -> bool:
+    return isinstance(v, list) and bool(v) and all(isinstance(x, Mapping) for x in v)
+
+
+def _write_table(lines: list[str], prefix: str, table: Mapping) -> None:
+    for k, v in table.items():
+        if not isinstance(v, Mapping) and not _is_table_array(v):
+            lines.append(f"{_key(k)} = {_value(v)}")
+    for k, v in table.items():
+        name = f"{prefix}.{_key(k)}" if prefix else _key(k)
+        if isinstance(v, Mapping):
+            lines.append("")
+            lines.append(f"[{name}]")
+            _write_table(lines, name, v)
+        elif _is_table_array(v):
+            for item in v:
+                lines.append("")
+                lines.append(f"[[{name}]]")
+                for ik, iv in item.items():
+                    lines.append(f"{_key(ik)} = {_value(iv)}")
