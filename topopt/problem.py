@@ -419,6 +419,14 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
             void |= mask
             solid &= ~mask
 
+    # A load on nodes that touch only passive void would act on nothing.
+    touches_material = np.zeros(grid.n_nodes, dtype=bool)
+    touches_material[grid.element_nodes[~void.ravel()].ravel()] = True
+    for i, load in enumerate(loads):
+        if not touches_material[load.nodes].all():
+            raise r.fail(f"loads[{i}].where", "selects nodes surrounded by passive void; "
+                         "the load would act on nothing (move it onto material)")
+
     opt = r.table(data, "optimize", OPTIMIZE_KEYS)
     vf = r.number(opt, "volume_fraction", "optimize.volume_fraction", low=0.0, high=1.0,
                   low_open=True, high_open=True)

@@ -1,0 +1,28 @@
+# The whole set-up on a fresh machine: `make demo` and `make test`.
+VENV := .venv
+BIN := $(VENV)/bin
+
+.PHONY: demo test slow lint bench setup clean
+
+setup:
+	@bash tools/bootstrap.sh
+
+demo: setup
+	$(BIN)/buttress optimize examples/wall-bracket-2d.toml --out demo-results/wall-bracket --overwrite
+	@echo "picture: demo-results/wall-bracket/design.png"
+
+test: setup
+	$(BIN)/python -m pytest -q
+
+slow: setup
+	$(BIN)/python -m pytest -q -m slow
+
+lint: setup
+	$(BIN)/ruff check topopt filters tests benchmarks examples
+
+bench: setup
+	$(BIN)/python benchmarks/iteration.py --dims 2 --out benchmarks/results-2d.json
+	$(BIN)/python benchmarks/iteration.py --dims 3 --out benchmarks/results-3d.json
+
+clean:
+	rm -rf demo-results .pytest_cache
