@@ -64,7 +64,7 @@ class ReferenceModel:
 
 
 def reference_model(shape, element_size: float, thickness: float = 1.0) -> ReferenceModel:
-    """Build the scikit-fem mesh and basis of a box of ``shape`` elements of edge ``element_size``."""
+    """The scikit-fem mesh and basis of a box of ``shape`` elements of edge ``element_size``."""
     from skfem import Basis, ElementHex1, ElementQuad1, ElementVector, MeshHex, MeshQuad
 
     dim = len(shape)
@@ -124,7 +124,8 @@ def reference_compliance(table: Mapping, density: np.ndarray) -> float:
     p = opt.get("penalty", 3.0)
     rho = np.asarray(density, float)
     moduli = void + (1.0 - void) * rho**p
-    K = model.stiffness(moduli, youngs_modulus=mat["youngs_modulus"], poisson_ratio=mat["poisson_ratio"])
+    K = model.stiffness(moduli, youngs_modulus=mat["youngs_modulus"],
+                        poisson_ratio=mat["poisson_ratio"])
     dim = model.dim
     points = model.mesh.p
     tol = 1e-6 * h

@@ -84,7 +84,8 @@ def _problem_table(shape):
             {"where": {"x": [lx, lx], "z": [shape[2], shape[2]]}, "force": [0.5, 0.0, 0.0],
              "case": "b"},
         ],
-        "passive": [{"where": {"center": [2.0, 1.5], "radius": 1.0, "axis": "z"}, "state": "solid"}],
+        "passive": [{"where": {"center": [2.0, 1.5], "radius": 1.0, "axis": "z"},
+                     "state": "solid"}],
         "optimize": {"volume_fraction": 0.4, "penalty": 3.0},
     }
 
