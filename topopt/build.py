@@ -1,0 +1,628 @@
+"""Print-preparation analysis of a voxel design for one or more build directions.
+
+Works on any design: a density array (thresholded at 0.5) or a boolean voxel array,
+with a cubic element of edge ``element_size`` (2D designs are sections of out-of-plane
+``thickness``). For each build direction it estimates what laser powder-bed fusion
+would need: build height and layers, part volume and mass, the down-facing surface that
+needs support, the support volume (standing on the plate or on the part), support that
+could not be removed, powder trapped in closed cavities, build time and material cost.
+
+The build direction is data: every array is turned so that the build axis is axis 0
+with the plate at index 0, the work is done once, and the results are turned back.
+
+The estimates are first-order and meant as a design aid; they must be confirmed with the
+machine's own build preparation.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import asdict, dataclass, fields, replace
+
+import numpy as np
+
+AXIS_NAMES = "xyz"
+
+#: Typical process values (mm, s, h and currency units); placeholders of typical
+#: magnitude for metal powder-bed fusion, not data of any machine. ``recoat_time_s`` is
+#: per layer; the rates are in length unit cubed per hour of scanning.
+PROCESS_DEFAULTS: dict[str, float] = {
+    "layer_thickness": 0.03,  # 20-60 um common, 30 um typical (common practice)
+    "recoat_time_s": 10.0,  # about 5-15 s per layer (from memory)
+    "part_rate": 10000.0,  # about 5-20 cm^3/h for one laser (from memory)
+    "support_rate": 30000.0,  # supports are scanned sparsely, so faster (from memory)
+    "support_fill": 0.2,  # about 10-30 % of the supported volume (from memory)
+    "overhead_h": 1.0,  # set-up, heating, cooling
+    "powder_price": 0.1,  # currency per unit mass
+    "tool_access": 2.0,  # narrowest opening a support can be removed through
+}
+
+#: Fields of one direction's report, in the order written to inspect.json / inspect.csv.
+REPORT_FIELDS = (
+    "direction",
+    "overhang_angle",
+    "build_height",
+    "layers",
+    "part_volume",
+    "part_mass",
+    "down_facing_area",
+    "overhang_area",
+    "overhang_share",
+    "support_volume",
+    "support_on_plate_volume",
+    "support_on_part_volume",
+    "unremovable_support_volume",
+    "trapped_powder_volume",
+    "trapped_cavities",
+    "build_time_h",
+    "material_cost",
+    "score",
+)
+
+
+@dataclass(frozen=True)
+class BuildReport:
+    """Print-preparation figures of one design for one build direction.
+
+    Lengths, areas and volumes are in the design's length unit (in 2D an area is a
+    length times the thickness and a volume an area times the thickness). Support
+    volumes are material volumes: the supported column times the support fill.
+    ``overhang_area`` is the down-facing area needing support, measured on the voxel
+    faces, i.e. its footprint on the build plate. ``score`` is filled in by
+    :func:`rank_directions` (lower is better; NaN until ranked).
+    """
+
+    direction: str
+    overhang_angle: float
+    build_height: float
+    layers: int
+    part_volume: float
+    part_mass: float
+    down_facing_area: float
+    overhang_area: float
+    overhang_share: float
+    support_volume: float
+    support_on_plate_volume: float
+    support_on_part_volume: float
+    unremovable_support_volume: float
+    trapped_powder_volume: float
+    trapped_cavities: int
+    build_time_h: float
+    material_cost: float
+    score: float = float("nan")
+
+    def as_dict(self) -> dict:
+        """Plain dict in :data:`REPORT_FIELDS` order (JSON-ready)."""
+        data = asdict(self)
+        return {name: data[name] for name in REPORT_FIELDS}
+
+
+@dataclass(frozen=True)
+class BuildMasks:
+    """Voxel masks behind a :class:`BuildReport`, in the design's own orientation.
+
+    ``down_facing``: solid voxels whose lower face (towards the plate) borders void,
+    excluding faces on the plate; ``needs_support``: those of them that need support;
+    ``support``: void voxels filled by support columns; ``support_on_plate``: the part
+    of ``support`` in columns that reach the plate; ``accessible``: void a tool of the
+    access width can reach from outside; ``trapped``: void not connected to the outside.
+    """
+
+    solid: np.ndarray
+    down_facing: np.ndarray
+    needs_support: np.ndarray
+    support: np.ndarray
+    support_on_plate: np.ndarray
+    accessible: np.ndarray
+    trapped: np.ndarray
+    trapped_cavities: int
+
+
+def parse_direction(direction: str, ndim: int) -> tuple[int, int]:
+    """Axis index and sign (+1 or -1) of a build direction such as ``"+z"``.
+
+    Examples
+    --------
+    >>> parse_direction("-y", 2)
+    (1, -1)
+    """
+    if not isinstance(direction, str):
+        raise TypeError(f"direction must be a string such as '+z', got {direction!r}")
+    allowed = all_directions(ndim)
+    if direction not in allowed:
+        raise ValueError(f"direction must be one of {', '.join(allowed)}; got {direction!r}")
+    return AXIS_NAMES.index(direction[1]), (1 if direction[0] == "+" else -1)
+
+
+def all_directions(ndim: int) -> tuple[str, ...]:
+    """All axis build directions for a 2D or 3D design.
+
+    Examples
+    --------
+    >>> all_directions(2)
+    ('+x', '-x', '+y', '-y')
+    """
+    if ndim not in (2, 3):
+        raise ValueError(f"a design must be 2D or 3D, got {ndim} dimensions")
+    return tuple(s + a for a in AXIS_NAMES[:ndim] for s in "+-")
+
+
+def to_build_frame(array: np.ndarray, direction: str) -> np.ndarray:
+    """View of ``array`` with the build axis first and the plate at index 0."""
+    axis, sign = parse_direction(direction, array.ndim)
+    moved = np.moveaxis(array, axis, 0)
+    return moved[::-1] if sign < 0 else moved
+
+
+def from_build_frame(array: np.ndarray, direction: str) -> np.ndarray:
+    """Inverse of :func:`to_build_frame`."""
+    axis, sign = parse_direction(direction, array.ndim)
+    if sign < 0:
+        array = array[::-1]
+    return np.ascontiguousarray(np.moveaxis(array, 0, axis))
+
+
+def solid_voxels(design: np.ndarray) -> np.ndarray:
+    """Boolean voxels of a design: booleans as they are, densities at the 0.5 level.
+
+    Examples
+    --------
+    >>> solid_voxels(np.array([[0.2, 0.6], [0.9, 0.5]])).tolist()
+    [[False, True], [True, False]]
+    """
+    design = np.asarray(design)
+    if design.ndim not in (2, 3):
+        raise ValueError(f"design must be a 2D or 3D array, got shape {design.shape}")
+    if design.dtype == bool:
+        return design.copy()
+    if not np.issubdtype(design.dtype, np.number):
+        raise TypeError(f"design must hold numbers or booleans, got dtype {design.dtype}")
+    if not np.all(np.isfinite(design)):
+        raise ValueError("design holds NaN or infinite values")
+    # the same reading as filters.printability: solid strictly above the 0.5 level
+    return design > 0.5
+
+
+def _check_angle(overhang_angle: float) -> float:
+    angle = float(overhang_angle)
+    if not 0.0 < angle < 90.0:
+        raise ValueError(f"overhang_angle must lie strictly between 0 and 90 degrees, got {angle}")
+    return angle
+
+
+def _down_facing(solid_b: np.ndarray) -> np.ndarray:
+    """Solid voxels (build frame) with void right below; faces on the plate excluded."""
+    down = np.zeros_like(solid_b)
+    down[1:] = solid_b[1:] & ~solid_b[:-1]
+    return down
+
+
+def _surface_tilt(solid_b: np.ndarray, *, smoothing: float) -> np.ndarray:
+    """Angle in degrees between the local outward normal and straight down (build frame).
+
+    The normal comes from the gradient of the Gaussian-smoothed voxels. The one-layer
+    overhang rule alone sees only the layer below, so the staircase of a shallow slope
+    (say 30 degrees, which rises one layer every 1.7 voxels) looks half supported; the
+    smoothed normal sees the slope itself. Below the plate the bottom layer is repeated
+    so that faces resting on the plate do not look like overhangs.
+    """
+    from scipy import ndimage
+
+    modes = ["nearest"] + ["constant"] * (solid_b.ndim - 1)
+    smooth = ndimage.gaussian_filter(solid_b.astype(float), smoothing, mode=modes)
+    grads = np.gradient(smooth)
+    vertical = grads[0]
+    horizontal = np.sqrt(sum(g * g for g in grads[1:]))
+    return np.degrees(np.arctan2(horizontal, vertical))
+
+
+def _support_columns(needs_b: np.ndarray, solid_b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Void voxels between each face needing support and the part or plate below."""
+    support = np.zeros_like(solid_b)
+    for k in range(solid_b.shape[0] - 2, -1, -1):
+        support[k] = (needs_b[k + 1] | support[k + 1]) & ~solid_b[k]
+    # a column stands on the plate when no solid lies anywhere below it
+    solid_below = np.zeros_like(solid_b)
+    solid_below[1:] = np.logical_or.accumulate(solid_b[:-1], axis=0)
+    return support, support & ~solid_below
+
+
+def _outside_padding(void_b: np.ndarray, width: int, open_value: bool) -> np.ndarray:
+    """Void padded by ``width`` voxels of open powder, except below the plate (closed)."""
+    pad = [(0, width)] + [(width, width)] * (void_b.ndim - 1)
+    padded = np.pad(void_b, pad, constant_values=open_value)
+    return padded
+
+
+def _connected_to_outside(void_padded: np.ndarray, width: int) -> np.ndarray:
+    """Void voxels face-connected (4 in 2D, 6 in 3D) to the padding, padding removed."""
+    from scipy import ndimage
+
+    structure = ndimage.generate_binary_structure(void_padded.ndim, 1)
+    labels, _ = ndimage.label(void_padded, structure=structure)
+    border = np.ones(void_padded.shape, dtype=bool)
+    inner = (slice(0, void_padded.shape[0] - width),) + (slice(width, -width),) * (
+        void_padded.ndim - 1
+    )
+    border[inner] = False
+    outside_labels = np.unique(labels[border & void_padded])
+    outside_labels = outside_labels[outside_labels > 0]
+    connected = np.isin(labels, outside_labels)
+    return connected[inner]
+
+
+def trapped_void(solid_b: np.ndarray) -> tuple[np.ndarray, int]:
+    """Void regions (build frame) with no face-connected path to the outside.
+
+    The build plate (below index 0 of axis 0) is closed; every other face of the domain
+    opens to loose powder. Returns the mask and the number of cavities.
+    """
+    from scipy import ndimage
+
+    outside = _connected_to_outside(_outside_padding(~solid_b, 1, True), 1)
+    trapped = ~solid_b & ~outside
+    structure = ndimage.generate_binary_structure(solid_b.ndim, 1)
+    _, count = ndimage.label(trapped, structure=structure)
+    return trapped, int(count)
+
+
+def accessible_void(solid_b: np.ndarray, *, width_voxels: int) -> np.ndarray:
+    """Void (build frame) that a square/cube tool of ``width_voxels`` can reach from outside.
+
+    Morphological opening of the void with a square (cube) of that side keeps the places
+    the tool fits; of those, the ones face-connected to the outside are reachable. An
+    opening narrower than the tool therefore blocks what lies behind it.
+    """
+    from scipy import ndimage
+
+    n = max(1, int(width_voxels))
+    padded = _outside_padding(~solid_b, n, True)
+    # below the plate is solid, so the tool cannot come from there
+    opened = ndimage.binary_opening(padded, structure=np.ones((n,) * solid_b.ndim, dtype=bool))
+    return _connected_to_outside(opened, n) & ~solid_b
+
+
+def direction_masks(
+    design: np.ndarray,
+    *,
+    direction: str,
+    overhang_angle: float = 45.0,
+    element_size: float = 1.0,
+    tool_access: float = PROCESS_DEFAULTS["tool_access"],
+    smoothing: float = 1.5,
+) -> BuildMasks:
+    """Voxel masks of overhangs, supports, removable space and trapped powder.
+
+    Parameters
+    ----------
+    design : ndarray
+        Density (solid where >= 0.5) or boolean voxels, indexed (x, y[, z]).
+    direction : str
+        Build direction, ``"+x"`` ... ``"-z"``: layers stack that way, the plate lies on
+        the opposite face of the domain.
+    overhang_angle : float
+        Smallest angle (degrees) between a down-facing surface and the plate that prints
+        without support.
+    element_size : float
+        Voxel edge length.
+    tool_access : float
+        Narrowest opening (length unit) through which a support can be removed.
+    smoothing : float
+        Gaussian width (voxels) used to estimate surface normals.
+
+    Returns
+    -------
+    BuildMasks
+        All masks in the design's own orientation.
+
+    Notes
+    -----
+    A down-facing face needs support when its voxel fails the one-layer overhang rule of
+    :func:`filters.printability.supported_mask`, or when the smoothed surface there is
+    tilted less than ``overhang_angle`` from the plate (by more than half a degree, so
+    that a staircase at exactly the overhang angle passes).
+
+    Examples
+    --------
+    >>> shelf = np.zeros((6, 6), dtype=bool)
+    >>> shelf[0, :] = True; shelf[:, 4] = True     # a wall at x = 0 and a shelf at y = 4
+    >>> masks = direction_masks(shelf, direction="+y")
+    >>> int(masks.needs_support.sum()), int(masks.support_on_plate.sum())
+    (4, 16)
+    """
+    from filters.printability import supported_mask
+
+    solid = solid_voxels(design)
+    angle = _check_angle(overhang_angle)
+    if float(element_size) <= 0:
+        raise ValueError(f"element_size must be positive, got {element_size}")
+    if float(tool_access) < 0:
+        raise ValueError(f"tool_access must be >= 0, got {tool_access}")
+    parse_direction(direction, solid.ndim)
+
+    supported = np.asarray(supported_mask(solid, direction=direction, overhang_angle=angle))
+    solid_b = to_build_frame(solid, direction)
+    supported_b = to_build_frame(supported.astype(bool), direction)
+    down_b = _down_facing(solid_b)
+    tilt_b = _surface_tilt(solid_b, smoothing=smoothing)
+    needs_b = down_b & (~supported_b | (tilt_b < angle - 0.5))
+    support_b, on_plate_b = _support_columns(needs_b, solid_b)
+    width = math.ceil(float(tool_access) / float(element_size) - 1e-9)
+    accessible_b = accessible_void(solid_b, width_voxels=max(width, 1))
+    trapped_b, count = trapped_void(solid_b)
+
+    def back(a: np.ndarray) -> np.ndarray:
+        return from_build_frame(a, direction)
+
+    return BuildMasks(
+        solid=solid,
+        down_facing=back(down_b),
+        needs_support=back(needs_b),
+        support=back(support_b),
+        support_on_plate=back(on_plate_b),
+        accessible=back(accessible_b),
+        trapped=back(trapped_b),
+        trapped_cavities=count,
+    )
+
+
+def build_time_hours(
+    *,
+    layers: int,
+    part_volume: float,
+    support_volume: float,
+    recoat_time_s: float = PROCESS_DEFAULTS["recoat_time_s"],
+    part_rate: float = PROCESS_DEFAULTS["part_rate"],
+    support_rate: float = PROCESS_DEFAULTS["support_rate"],
+    overhead_h: float = PROCESS_DEFAULTS["overhead_h"],
+) -> float:
+    """First-order build time: recoating + scanning part and support + fixed overhead.
+
+    T = layers * recoat_time_s / 3600 + part_volume / part_rate
+    + support_volume / support_rate + overhead_h (the form of Baumers et al.,
+    Technological Forecasting and Social Change 102:193-201, 2016).
+
+    Examples
+    --------
+    >>> build_time_hours(layers=360, part_volume=1000.0, support_volume=0.0,
+    ...                  recoat_time_s=10.0, part_rate=1000.0, overhead_h=1.0)
+    3.0
+    """
+    if part_rate <= 0 or support_rate <= 0:
+        raise ValueError("part_rate and support_rate must be positive")
+    return (
+        layers * recoat_time_s / 3600.0
+        + part_volume / part_rate
+        + support_volume / support_rate
+        + overhead_h
+    )
+
+
+def _process_values(process: Mapping[str, float] | None) -> dict[str, float]:
+    values = dict(PROCESS_DEFAULTS)
+    for key, value in (process or {}).items():
+        if key not in PROCESS_DEFAULTS:
+            raise ValueError(
+                f"process: unknown key {key!r}; expected one of {', '.join(PROCESS_DEFAULTS)}"
+            )
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise TypeError(f"process: {key} must be a number, got {value!r}")
+        if not math.isfinite(value) or value < 0:
+            raise ValueError(f"process: {key} must be a finite number >= 0, got {value!r}")
+        values[key] = float(value)
+    for key in ("layer_thickness", "part_rate", "support_rate"):
+        if values[key] <= 0:
+            raise ValueError(f"process: {key} must be positive, got {values[key]}")
+    if values["support_fill"] > 1:
+        raise ValueError(f"process: support_fill must lie in [0, 1], got {values['support_fill']}")
+    return values
+
+
+def report_from_masks(
+    masks: BuildMasks,
+    *,
+    direction: str,
+    overhang_angle: float,
+    element_size: float,
+    thickness: float = 1.0,
+    process: Mapping[str, float] | None = None,
+    mass_density: float | None = None,
+) -> BuildReport:
+    """Turn the masks of one direction into figures (see :class:`BuildReport`).
+
+    Without ``mass_density`` the mass and the material cost are NaN (not estimated).
+    """
+    values = _process_values(process)
+    h = float(element_size)
+    ndim = masks.solid.ndim
+    depth = float(thickness) if ndim == 2 else h
+    voxel = h * h * depth
+    face = h * depth
+    fill = values["support_fill"]
+
+    solid_b = to_build_frame(masks.solid, direction)
+    occupied = np.flatnonzero(solid_b.reshape(solid_b.shape[0], -1).any(axis=1))
+    height = (occupied[-1] + 1) * h if occupied.size else 0.0
+    layers = math.ceil(height / values["layer_thickness"] - 1e-9) if height > 0 else 0
+
+    part_volume = float(masks.solid.sum()) * voxel
+    support_volume = float(masks.support.sum()) * voxel * fill
+    on_plate = float(masks.support_on_plate.sum()) * voxel * fill
+    unremovable = float((masks.support & ~masks.accessible).sum()) * voxel * fill
+    down_area = float(masks.down_facing.sum()) * face
+    overhang_area = float(masks.needs_support.sum()) * face
+    rho = float("nan") if mass_density is None else float(mass_density)
+    return BuildReport(
+        direction=direction,
+        overhang_angle=float(overhang_angle),
+        build_height=float(height),
+        layers=int(layers),
+        part_volume=part_volume,
+        part_mass=part_volume * rho,
+        down_facing_area=down_area,
+        overhang_area=overhang_area,
+        overhang_share=overhang_area / down_area if down_area > 0 else 0.0,
+        support_volume=support_volume,
+        support_on_plate_volume=on_plate,
+        support_on_part_volume=support_volume - on_plate,
+        unremovable_support_volume=unremovable,
+        trapped_powder_volume=float(masks.trapped.sum()) * voxel,
+        trapped_cavities=int(masks.trapped_cavities),
+        build_time_h=build_time_hours(
+            layers=layers,
+            part_volume=part_volume,
+            support_volume=support_volume,
+            recoat_time_s=values["recoat_time_s"],
+            part_rate=values["part_rate"],
+            support_rate=values["support_rate"],
+            overhead_h=values["overhead_h"],
+        ),
+        material_cost=(part_volume + support_volume) * rho * values["powder_price"],
+    )
+
+
+def analyze_design(
+    design: np.ndarray,
+    *,
+    element_size: float,
+    directions: Sequence[str] | None = None,
+    overhang_angle: float = 45.0,
+    thickness: float = 1.0,
+    process: Mapping[str, float] | None = None,
+    mass_density: float | None = None,
+    weights: Mapping[str, float] | None = None,
+    keep_masks: bool = False,
+) -> tuple[list[BuildReport], str, list[BuildMasks]]:
+    """Analyse a design for several build directions and rank them.
+
+    Parameters
+    ----------
+    design : ndarray
+        Density or boolean voxels, indexed (x, y[, z]).
+    element_size : float
+        Voxel edge length.
+    directions : sequence of str, optional
+        Candidate build directions; all axis directions by default.
+    overhang_angle : float
+        Self-supporting angle from the plate, degrees.
+    thickness : float
+        Out-of-plane thickness of a 2D design.
+    process : mapping, optional
+        Process values overriding :data:`PROCESS_DEFAULTS`.
+    mass_density : float, optional
+        Mass per unit volume of the solid; without it mass and cost are NaN and the
+        cost term drops out of the score.
+    weights : mapping, optional
+        Weights of ``time``, ``cost`` and ``support`` in the score (1 each by default).
+    keep_masks : bool
+        Return the voxel masks too (for pictures).
+
+    Returns
+    -------
+    reports : list of BuildReport
+        One per direction, with ``score`` filled in.
+    best : str
+        Direction with the lowest score.
+    masks : list of BuildMasks
+        Empty unless ``keep_masks``.
+
+    Examples
+    --------
+    >>> block = np.ones((4, 2), dtype=bool)
+    >>> reports, best, _ = analyze_design(block, element_size=1.0, directions=["+x", "+y"])
+    >>> best, reports[1].build_height
+    ('+y', 2.0)
+    """
+    solid = solid_voxels(design)
+    if not solid.any():
+        raise ValueError("design has no solid voxel (no density >= 0.5)")
+    if float(element_size) <= 0 or not math.isfinite(float(element_size)):
+        raise ValueError(f"element_size must be a positive number, got {element_size}")
+    if float(thickness) <= 0:
+        raise ValueError(f"thickness must be positive, got {thickness}")
+    if mass_density is not None and not (math.isfinite(mass_density) and mass_density > 0):
+        raise ValueError(f"mass_density must be a positive number, got {mass_density}")
+    values = _process_values(process)
+    chosen = list(directions) if directions else list(all_directions(solid.ndim))
+    if len(set(chosen)) != len(chosen):
+        raise ValueError(f"directions repeat an entry: {chosen}")
+    reports, kept = [], []
+    for direction in chosen:
+        masks = direction_masks(
+            solid,
+            direction=direction,
+            overhang_angle=overhang_angle,
+            element_size=element_size,
+            tool_access=values["tool_access"],
+        )
+        reports.append(
+            report_from_masks(
+                masks,
+                direction=direction,
+                overhang_angle=overhang_angle,
+                element_size=element_size,
+                thickness=thickness,
+                process=values,
+                mass_density=mass_density,
+            )
+        )
+        if keep_masks:
+            kept.append(masks)
+    ranked, best = rank_directions(reports, weights=weights)
+    return ranked, best, kept
+
+
+#: score term -> report field it is computed from
+SCORE_TERMS = {"time": "build_time_h", "cost": "material_cost", "support": "support_volume"}
+
+
+def rank_directions(
+    reports: Sequence[BuildReport], *, weights: Mapping[str, float] | None = None
+) -> tuple[list[BuildReport], str]:
+    """Score each direction by weighted, normalised time, cost and support; lower is better.
+
+    Each term is divided by its largest value over the directions (so it lies in
+    [0, 1]); the score is the weighted mean of the terms. A term that is NaN for some
+    direction (the cost without a mass density) is left out. Ties go to the first
+    direction.
+
+    Examples
+    --------
+    >>> a = BuildReport("+x", 45, 1, 1, 1, 1, 0, 0, 0, 0, 0, 0, 0, 0, 0, 2.0, 1.0)
+    >>> b = replace(a, direction="+y", build_time_h=4.0)
+    >>> ranked, best = rank_directions([a, b], weights={"time": 1, "cost": 0, "support": 0})
+    >>> best, [r.score for r in ranked]
+    ('+x', [0.5, 1.0])
+    """
+    if not reports:
+        raise ValueError("rank_directions needs at least one report")
+    w = {name: 1.0 for name in SCORE_TERMS}
+    for key, value in (weights or {}).items():
+        if key not in SCORE_TERMS:
+            raise ValueError(f"weights: unknown term {key!r}; expected time, cost or support")
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or value < 0:
+            raise ValueError(f"weights: {key} must be a number >= 0, got {value!r}")
+        w[key] = float(value)
+    if sum(w.values()) <= 0:
+        raise ValueError("weights: at least one weight must be positive")
+    scores = np.zeros(len(reports))
+    total = 0.0
+    for term, field_name in SCORE_TERMS.items():
+        column = np.array([getattr(r, field_name) for r in reports], dtype=float)
+        if not np.all(np.isfinite(column)):
+            continue
+        total += w[term]
+        top = column.max()
+        if top > 0:
+            scores += w[term] * column / top
+    scores = scores / total if total > 0 else scores
+    ranked = [replace(r, score=float(s)) for r, s in zip(reports, scores, strict=True)]
+    best = ranked[int(np.argmin(scores))].direction
+    return ranked, best
+
+
+def report_field_names() -> list[str]:
+    """Names of the :class:`BuildReport` fields in output order."""
+    names = {f.name for f in fields(BuildReport)}
+    return [n for n in REPORT_FIELDS if n in names]
