@@ -15,6 +15,7 @@ import sys
 #: Subcommand name -> module implementing it.
 COMMANDS: dict[str, str] = {
     "optimize": "topopt.commands.optimize",
+    "sweep": "topopt.commands.sweep",
 }
 
 
