@@ -379,6 +379,9 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
     if len(fixed_axes) < dim:
         missing = sorted(set(AXES[:dim]) - fixed_axes)
         raise r.fail("restraints", f"no restraint in {', '.join(missing)}; the part could move freely")
+    if not _restraints_stop_rigid_motion(grid, restraints):
+        raise r.fail("restraints", "the restrained nodes still let the part turn as a rigid body; "
+                     "restrain more nodes (e.g. a whole edge or two separate points)")
 
     loads = []
     items = _list_of_tables(r, data, "loads")
@@ -514,6 +517,25 @@ def _check_overhang_angle(r: _Reader, angle: float) -> None:
         enforced_overhang_angle(angle)
     except ValueError as exc:
         raise r.fail("build.overhang_angle", str(exc).splitlines()[0]) from None
+
+
+def _restraints_stop_rigid_motion(grid: Grid, restraints) -> bool:
+    """Whether the fixed dofs suppress every rigid-body mode (else K is singular)."""
+    d = grid.dim
+    coords = grid.node_coordinates() - 0.5 * np.array(grid.size)
+    pairs = [(0, 1)] if d == 2 else [(0, 1), (1, 2), (0, 2)]
+    rows = []
+    for rr in restraints:
+        for axis in rr.fix:
+            a = AXES.index(axis)
+            x = coords[rr.nodes]
+            # Value of each rigid mode (translations, then rotations) at these dofs.
+            modes = [np.full(len(x), float(a == c)) for c in range(d)]
+            for i, j in pairs:
+                modes.append(-x[:, j] if a == i else x[:, i] if a == j else np.zeros(len(x)))
+            rows.append(np.column_stack(modes))
+    block = np.concatenate(rows) / np.array([1.0] * d + [max(grid.size)] * len(pairs))
+    return np.linalg.matrix_rank(block, tol=1e-9 * max(1.0, np.abs(block).max())) == block.shape[1]
 
 
 def _extent(grid: Grid) -> str:
