@@ -98,7 +98,29 @@ def summary_dict(result, problem) -> dict:
         "caution": CAUTION,
     }
     # -- print-preparation fields (unsupported_elements, overhang_area) are added here --
+    summary.update(printability_summary(result.density, problem))
     return summary
+
+
+def printability_summary(density: np.ndarray, problem) -> dict:
+    """``unsupported_elements`` and ``overhang_area`` of a physical density (0.5 level).
+
+    Both are null when the build direction is ``"none"`` (no direction to judge by).
+    """
+    direction = problem.build.direction
+    if direction == "none":
+        return {"unsupported_elements": None, "overhang_area": None}
+    from filters.printability import overhang_area, unsupported_count
+
+    grid = problem.grid
+    angle = problem.build.overhang_angle
+    return {
+        "unsupported_elements": unsupported_count(density, direction=direction,
+                                                  overhang_angle=angle),
+        "overhang_area": overhang_area(density, direction=direction, overhang_angle=angle,
+                                       element_size=grid.element_size,
+                                       thickness=grid.thickness if grid.dim == 2 else 1.0),
+    }
 
 
 def history_columns(history: Iterable[dict]) -> list[str]:
