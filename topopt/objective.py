@@ -71,14 +71,16 @@ class ComplianceModel:
         self.free = problem.free_dofs()
         self.assembler = Assembler(grid, self.element_matrix, self.free)
         self.forces = problem.load_vectors()
-        self.solver = make_solver(solver or problem.optimize.solver, grid=grid, free_dofs=self.free)
+        self.solver = make_solver(solver or problem.optimize.solver, grid=grid, free_dofs=self.free,
+                                  element_matrix=self.element_matrix)
 
     def displacements(self, physical: np.ndarray) -> np.ndarray:
         """Global displacements for every load case, shape (n_dofs, n_cases)."""
         moduli = simp_modulus(physical.ravel(), penalty=self.penalty, void_stiffness=self.void_stiffness)
         K = self.assembler.assemble(moduli)
         U = np.zeros_like(self.forces)
-        U[self.free] = self.solver.solve(K, self.forces[self.free]).reshape(self.free.size, -1)
+        U[self.free] = self.solver.solve(K, self.forces[self.free], moduli=moduli).reshape(
+            self.free.size, -1)
         return U
 
     def element_energy(self, U: np.ndarray) -> np.ndarray:

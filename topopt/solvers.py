@@ -1,9 +1,12 @@
 """Linear solvers for K u = f behind one interface, found by name in :data:`SOLVERS`.
 
-Every solver is made by a factory ``factory(*, grid, free_dofs) -> solver`` and has
-``name``, ``iterations`` (of the last solve; 0 for direct solvers) and
-``solve(K, F) -> U`` for a symmetric positive definite CSC matrix over the free dofs and
-right-hand sides ``F`` of shape (n_free, n_cases).
+Every solver is made by a factory ``factory(*, grid, free_dofs, element_matrix=None)``
+and has ``name``, ``iterations`` (of the last solve; 0 for direct solvers) and
+``solve(K, F, *, moduli=None) -> U`` for a symmetric positive definite CSC matrix over
+the free dofs and right-hand sides ``F`` of shape (n_free, n_cases). ``element_matrix``
+and ``moduli`` (the relative element moduli K was assembled from) are optional hints
+that the multigrid solver uses to build its coarse grids element by element; direct
+solvers ignore them.
 """
 
 from __future__ import annotations
@@ -35,13 +38,14 @@ class CholmodSolver:
 
     name = "cholmod"
 
-    def __init__(self, *, grid: Grid | None = None, free_dofs: np.ndarray | None = None):
+    def __init__(self, *, grid: Grid | None = None, free_dofs: np.ndarray | None = None,
+                 element_matrix: np.ndarray | None = None):
         from sksparse.cholmod import analyze  # noqa: F401  (fail early if missing)
 
         self._factor = None
         self.iterations = 0
 
-    def solve(self, K: sparse.spmatrix, F: np.ndarray) -> np.ndarray:
+    def solve(self, K: sparse.spmatrix, F: np.ndarray, *, moduli=None) -> np.ndarray:
         """Solve K U = F."""
         from sksparse.cholmod import analyze
 
@@ -57,10 +61,11 @@ class ScipySolver:
 
     name = "scipy"
 
-    def __init__(self, *, grid: Grid | None = None, free_dofs: np.ndarray | None = None):
+    def __init__(self, *, grid: Grid | None = None, free_dofs: np.ndarray | None = None,
+                 element_matrix: np.ndarray | None = None):
         self.iterations = 0
 
-    def solve(self, K: sparse.spmatrix, F: np.ndarray) -> np.ndarray:
+    def solve(self, K: sparse.spmatrix, F: np.ndarray, *, moduli=None) -> np.ndarray:
         """Solve K U = F."""
         lu = sla.splu(
             sparse.csc_matrix(K),
@@ -71,19 +76,115 @@ class ScipySolver:
         return lu.solve(np.asarray(F, dtype=float))
 
 
-#: Solver factories by name. Other modules register more (e.g. multigrid).
+class MultigridSolver:
+    """CG preconditioned by a geometric multigrid V-cycle (see :mod:`topopt.multigrid`).
+
+    Each load case starts from its solution of the previous call (a warm start: in an
+    optimisation the design changes little between iterations).
+
+    Parameters
+    ----------
+    grid : Grid
+        The finest grid (required: the hierarchy is geometric).
+    free_dofs : ndarray of int
+        Free dofs of the finest grid.
+    element_matrix : ndarray, optional
+        Element matrix of the solid material; with the ``moduli`` passed to
+        :meth:`solve` the coarse operators are built element by element.
+    tolerance : float
+        Relative energy-norm error at which CG stops.
+    max_iterations : int
+        CG iteration limit; reaching it raises ``RuntimeError``.
+    coarse_dofs : int
+        Coarsening stops once a grid has at most this many free dofs.
+
+    Examples
+    --------
+    >>> from topopt.elements import q4_stiffness
+    >>> from topopt.assembly import Assembler
+    >>> g = Grid((16, 8), 1.0)
+    >>> free = np.arange(2 * 9, g.n_dofs)              # x = 0 column of nodes fixed
+    >>> Ke = q4_stiffness(youngs_modulus=1.0, poisson_ratio=0.3, element_size=1.0)
+    >>> K = Assembler(g, Ke, free).assemble(np.ones(g.n_elements))
+    >>> s = MultigridSolver(grid=g, free_dofs=free, element_matrix=Ke, coarse_dofs=50)
+    >>> u = s.solve(K, np.ones((free.size, 1)), moduli=np.ones(g.n_elements))
+    >>> bool(np.linalg.norm(K @ u - 1.0) < 1e-4 * np.sqrt(free.size))
+    True
+    """
+
+    name = "multigrid"
+
+    def __init__(self, *, grid: Grid, free_dofs: np.ndarray,
+                 element_matrix: np.ndarray | None = None,
+                 tolerance: float | None = None, max_iterations: int = 1000,
+                 coarse_dofs: int = 6000):
+        from topopt.multigrid import DEFAULT_TOLERANCE, MultigridHierarchy
+
+        if grid is None or free_dofs is None:
+            raise ValueError("solver 'multigrid' needs the grid and the free dofs")
+        self.hierarchy = MultigridHierarchy(grid, free_dofs, coarse_dofs=coarse_dofs)
+        self.element_matrix = element_matrix
+        self.tolerance = DEFAULT_TOLERANCE if tolerance is None else float(tolerance)
+        self.max_iterations = int(max_iterations)
+        self.iterations = 0
+        self._previous: np.ndarray | None = None
+
+    def solve(self, K: sparse.spmatrix, F: np.ndarray, *, moduli=None) -> np.ndarray:
+        """Solve K U = F (iterations of all load cases summed in ``iterations``)."""
+        from topopt.multigrid import multigrid_cg
+
+        F = np.asarray(F, dtype=float)
+        F2 = F.reshape(F.shape[0], -1)
+        use_elements = moduli is not None and self.element_matrix is not None
+        self.hierarchy.update(K, element_matrix=self.element_matrix if use_elements else None,
+                              moduli=moduli if use_elements else None)
+        warm = self._previous is not None and self._previous.shape == F2.shape
+        U = np.zeros_like(F2)
+        self.iterations = 0
+        for c in range(F2.shape[1]):
+            x0 = self._previous[:, c] if warm else None
+            U[:, c], its, ok = multigrid_cg(self.hierarchy, F2[:, c], x0,
+                                            tolerance=self.tolerance,
+                                            max_iterations=self.max_iterations)
+            self.iterations += its
+            if not ok:
+                raise RuntimeError(
+                    f"multigrid-CG did not converge in {self.max_iterations} iterations"
+                )
+        self._previous = U.copy()
+        return U.reshape(F.shape)
+
+
+#: Solver factories by name.
 SOLVERS: dict[str, Callable[..., object]] = {
     "cholmod": CholmodSolver,
     "scipy": ScipySolver,
+    "multigrid": MultigridSolver,
 }
+
+#: Free-dof counts above which "auto" picks multigrid-CG over the direct solver.
+#: Measured on the 2-core machine of benchmarks/results.md (one full iteration, smooth
+#: cantilever density; see benchmarks/iteration.py): in 3D CHOLMOD and multigrid-CG
+#: cross near MEASURED_3D dofs; in 2D the direct solver stays faster up to MEASURED_2D.
+AUTO_MULTIGRID_DOFS = {2: 400_000, 3: 60_000}
 
 
 def choose_solver(*, grid: Grid, free_dofs: np.ndarray) -> str:
-    """Name of the solver ``"auto"`` picks for this problem."""
-    return "cholmod" if cholmod_available() else "scipy"
+    """Name of the solver ``"auto"`` picks for this problem.
+
+    Direct (CHOLMOD, else SciPy) below :data:`AUTO_MULTIGRID_DOFS` free dofs,
+    multigrid-CG above; without CHOLMOD the SciPy direct solver is slow, so multigrid
+    takes over at a tenth of that size.
+    """
+    n_free = int(np.asarray(free_dofs).size)
+    limit = AUTO_MULTIGRID_DOFS[grid.dim]
+    if cholmod_available():
+        return "cholmod" if n_free <= limit else "multigrid"
+    return "scipy" if n_free <= limit // 10 else "multigrid"
 
 
-def make_solver(name: str, *, grid: Grid, free_dofs: np.ndarray):
+def make_solver(name: str, *, grid: Grid, free_dofs: np.ndarray,
+                element_matrix: np.ndarray | None = None):
     """Create a solver by name (``"auto"`` picks the best available).
 
     Examples
@@ -98,11 +199,11 @@ def make_solver(name: str, *, grid: Grid, free_dofs: np.ndarray):
         raise ValueError(f"solver must be one of {sorted(SOLVERS) + ['auto']}, got {name!r}")
     if name == "cholmod" and not cholmod_available():
         raise ValueError("solver 'cholmod' requested but scikit-sparse is not installed")
-    return SOLVERS[name](grid=grid, free_dofs=free_dofs)
+    return SOLVERS[name](grid=grid, free_dofs=free_dofs, element_matrix=element_matrix)
 
 
 def blas_info() -> str:
-    """A one-line description of the BLAS numpy (and so SciPy) is using."""
+    """Describe in one line the BLAS numpy (and so SciPy) is using."""
     try:
         from threadpoolctl import threadpool_info
 
@@ -122,7 +223,8 @@ def cholmod_blas() -> str:
     import subprocess
 
     try:
-        out = subprocess.run(["ldd", ch.__file__], capture_output=True, text=True, timeout=10).stdout
+        out = subprocess.run(["ldd", ch.__file__], capture_output=True, text=True,
+                             timeout=10).stdout
     except (OSError, subprocess.SubprocessError):
         return "unknown"
     # ldd lists libcholmod's own dependencies too, so the BLAS it resolves to shows here.
