@@ -191,6 +191,12 @@ def _check_angle(overhang_angle: float) -> float:
     return angle
 
 
+def first_occupied_layer(solid_b: np.ndarray) -> int:
+    """Index of the lowest layer (build frame) holding solid; 0 for an empty design."""
+    occupied = np.flatnonzero(solid_b.reshape(solid_b.shape[0], -1).any(axis=1))
+    return int(occupied[0]) if occupied.size else 0
+
+
 def _down_facing(solid_b: np.ndarray) -> np.ndarray:
     """Solid voxels (build frame) with void right below; faces on the plate excluded."""
     down = np.zeros_like(solid_b)
@@ -267,12 +273,16 @@ def trapped_void(solid_b: np.ndarray) -> tuple[np.ndarray, int]:
     return trapped, int(count)
 
 
-def accessible_void(solid_b: np.ndarray, *, width_voxels: int) -> np.ndarray:
+def accessible_void(
+    solid_b: np.ndarray, *, width_voxels: int, from_anywhere: bool = False
+) -> np.ndarray:
     """Void (build frame) that a square/cube tool of ``width_voxels`` can reach from outside.
 
     Morphological opening of the void with a square (cube) of that side keeps the places
     the tool fits; of those, the ones face-connected to the outside are reachable. An
-    opening narrower than the tool therefore blocks what lies behind it.
+    opening narrower than the tool therefore blocks what lies behind it. With
+    ``from_anywhere`` (a 2D plate whose holes open through its thickness) every place
+    the tool fits is reachable.
     """
     from scipy import ndimage
 
@@ -280,6 +290,9 @@ def accessible_void(solid_b: np.ndarray, *, width_voxels: int) -> np.ndarray:
     padded = _outside_padding(~solid_b, n, True)
     # below the plate is solid, so the tool cannot come from there
     opened = ndimage.binary_opening(padded, structure=np.ones((n,) * solid_b.ndim, dtype=bool))
+    if from_anywhere:
+        inner = (slice(0, solid_b.shape[0]),) + (slice(n, -n),) * (solid_b.ndim - 1)
+        return opened[inner] & ~solid_b
     return _connected_to_outside(opened, n) & ~solid_b
 
 
@@ -291,6 +304,7 @@ def direction_masks(
     element_size: float = 1.0,
     tool_access: float = PROCESS_DEFAULTS["tool_access"],
     smoothing: float = 1.5,
+    through_holes: bool = False,
 ) -> BuildMasks:
     """Voxel masks of overhangs, supports, removable space and trapped powder.
 
@@ -310,11 +324,18 @@ def direction_masks(
         Narrowest opening (length unit) through which a support can be removed.
     smoothing : float
         Gaussian width (voxels) used to estimate surface normals.
+    through_holes : bool
+        2D only. False (default): the design is a section and a void closed in the plane
+        is a closed cavity. True: the design is a plate extruded to its thickness, so
+        every hole is open on both faces; no powder is trapped, and a tool reaches any
+        place of a hole wide enough for it.
 
     Returns
     -------
     BuildMasks
-        All masks in the design's own orientation.
+        All masks in the design's own orientation and domain. The part is placed on the
+        plate: empty layers between the plate side of the domain and the part's lowest
+        point are left out of the analysis.
 
     Notes
     -----
@@ -341,19 +362,28 @@ def direction_masks(
         raise ValueError(f"tool_access must be >= 0, got {tool_access}")
     parse_direction(direction, solid.ndim)
 
-    supported = np.asarray(supported_mask(solid, direction=direction, overhang_angle=angle))
-    solid_b = to_build_frame(solid, direction)
+    # the part is placed on the plate: empty layers under its lowest point are dropped
+    full_b = to_build_frame(solid, direction)
+    lowest = first_occupied_layer(full_b)
+    solid_b = np.ascontiguousarray(full_b[lowest:])
+    placed = from_build_frame(solid_b, direction)
+    supported = np.asarray(supported_mask(placed, direction=direction, overhang_angle=angle))
     supported_b = to_build_frame(supported.astype(bool), direction)
     down_b = _down_facing(solid_b)
     tilt_b = _surface_tilt(solid_b, smoothing=smoothing)
     needs_b = down_b & (~supported_b | (tilt_b < angle - 0.5))
     support_b, on_plate_b = _support_columns(needs_b, solid_b)
     width = math.ceil(float(tool_access) / float(element_size) - 1e-9)
-    accessible_b = accessible_void(solid_b, width_voxels=max(width, 1))
-    trapped_b, count = trapped_void(solid_b)
+    if through_holes and solid.ndim == 2:
+        accessible_b = accessible_void(solid_b, width_voxels=max(width, 1), from_anywhere=True)
+        trapped_b, count = np.zeros_like(solid_b), 0
+    else:
+        accessible_b = accessible_void(solid_b, width_voxels=max(width, 1))
+        trapped_b, count = trapped_void(solid_b)
 
     def back(a: np.ndarray) -> np.ndarray:
-        return from_build_frame(a, direction)
+        pad = [(lowest, 0)] + [(0, 0)] * (a.ndim - 1)
+        return from_build_frame(np.pad(a, pad, constant_values=False), direction)
 
     return BuildMasks(
         solid=solid,
@@ -443,7 +473,7 @@ def report_from_masks(
 
     solid_b = to_build_frame(masks.solid, direction)
     occupied = np.flatnonzero(solid_b.reshape(solid_b.shape[0], -1).any(axis=1))
-    height = (occupied[-1] + 1) * h if occupied.size else 0.0
+    height = (occupied[-1] - occupied[0] + 1) * h if occupied.size else 0.0
     layers = math.ceil(height / values["layer_thickness"] - 1e-9) if height > 0 else 0
 
     part_volume = float(masks.solid.sum()) * voxel
@@ -493,6 +523,7 @@ def analyze_design(
     mass_density: float | None = None,
     weights: Mapping[str, float] | None = None,
     keep_masks: bool = False,
+    through_holes: bool = False,
 ) -> tuple[list[BuildReport], str, list[BuildMasks]]:
     """Analyse a design for several build directions and rank them.
 
@@ -517,6 +548,8 @@ def analyze_design(
         Weights of ``time``, ``cost`` and ``support`` in the score (1 each by default).
     keep_masks : bool
         Return the voxel masks too (for pictures).
+    through_holes : bool
+        2D only: holes open through the thickness (see :func:`direction_masks`).
 
     Returns
     -------
@@ -555,6 +588,7 @@ def analyze_design(
             overhang_angle=overhang_angle,
             element_size=element_size,
             tool_access=values["tool_access"],
+            through_holes=through_holes,
         )
         reports.append(
             report_from_masks(

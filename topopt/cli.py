@@ -16,6 +16,8 @@ import sys
 COMMANDS: dict[str, str] = {
     "optimize": "topopt.commands.optimize",
     "sweep": "topopt.commands.sweep",
+    "inspect": "topopt.commands.inspect",
+    "export": "topopt.commands.export",
 }
 
 

@@ -239,5 +239,18 @@ def write_vtu(path: str | Path, density: np.ndarray, problem) -> None:
     os.replace(tmp, path)
 
 
-#: Picture and mesh writers by file suffix; more (e.g. ``stl``) register here.
-WRITERS: dict[str, Callable] = {"png": write_png, "vtu": write_vtu}
+def write_stl(path: str | Path, density: np.ndarray, problem) -> None:
+    """Closed surface at the 0.5 level as binary STL, for 3D runs only.
+
+    2D runs and designs with no element above 0.5 get no file (``buttress export
+    --format stl`` writes the extruded 2D contour on request).
+    """
+    from topopt.surface import write_design_stl
+
+    if problem.grid.dim != 3 or not np.any(np.asarray(density) > 0.5):
+        return
+    write_design_stl(path, density, element_size=problem.grid.element_size)
+
+
+#: Picture and mesh writers by file suffix; more register here.
+WRITERS: dict[str, Callable] = {"png": write_png, "vtu": write_vtu, "stl": write_stl}

@@ -1,0 +1,66 @@
+"""Write a mesh or picture of a results folder's design.
+
+stl: the closed surface at the 0.5 level (marching cubes in 3D, optionally smoothed with
+--smooth Taubin passes; in 2D the 0.5 contour extruded to the thickness); vtu: one cell per
+element with its density; png: the picture. Lengths are in the problem's unit.
+"""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+HELP = "write design.stl, design.vtu or design.png from a results folder"
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """Options of ``buttress export``."""
+    parser.add_argument("result", help="results folder (with result.npz and problem.toml)")
+    parser.add_argument("--format", required=True, choices=("stl", "vtu", "png"),
+                        help="what to write")
+    parser.add_argument("--smooth", type=int, default=0, metavar="N",
+                        help="Taubin smoothing passes for stl (volume kept; default 0)")
+    parser.add_argument("--out", default=None,
+                        help="file to write (default: RESULT/design.FORMAT)")
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run ``buttress export``."""
+    import numpy as np
+
+    from topopt.export import WRITERS
+    from topopt.problem import load_problem
+    from topopt.surface import write_design_stl
+
+    folder = Path(args.result)
+    if not folder.is_dir() or not (folder / "result.npz").is_file():
+        raise ValueError(f"{folder}: not a results folder (no result.npz)")
+    if not (folder / "problem.toml").is_file():
+        raise ValueError(f"{folder}: the results folder has no problem.toml")
+    if args.smooth < 0:
+        raise ValueError(f"--smooth must be >= 0, got {args.smooth}")
+    if args.smooth and args.format != "stl":
+        raise ValueError("--smooth applies to --format stl only")
+    problem = load_problem(folder / "problem.toml")
+    try:
+        with np.load(folder / "result.npz", allow_pickle=False) as data:
+            if "density" not in data.files:
+                raise ValueError(f"{folder}/result.npz: no array named 'density'")
+            density = np.asarray(data["density"], dtype=float)
+    except (OSError, EOFError) as exc:
+        raise ValueError(f"{folder}/result.npz: not readable ({exc})") from None
+    if density.shape != tuple(problem.grid.shape):
+        raise ValueError(f"{folder}/result.npz: density shape {density.shape} does not match "
+                         f"the problem grid {tuple(problem.grid.shape)}")
+    if not np.all(np.isfinite(density)):
+        raise ValueError(f"{folder}/result.npz: the density holds NaN or infinite values")
+    out = Path(args.out) if args.out else folder / f"design.{args.format}"
+    if out.suffix.lower() != f".{args.format}":
+        raise ValueError(f"{out}: the file name must end in .{args.format}")
+    if args.format == "stl":
+        write_design_stl(out, density, element_size=problem.grid.element_size,
+                         thickness=problem.grid.thickness, smoothing_iterations=args.smooth)
+    else:
+        WRITERS[args.format](out, density, problem)
+    print(f"wrote {out}")
+    return 0

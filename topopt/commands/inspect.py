@@ -1,0 +1,388 @@
+"""Print-preparation report of a design for each candidate build direction.
+
+DESIGN is a results folder (its result.npz and problem.toml), a .npy / .npz density
+array, or a closed STL surface voxelised at --element-size. For every direction the
+report gives build height and layers, part volume and mass, the down-facing area that
+needs support, support volume on the plate and on the part, support that a tool could
+not reach, trapped powder, build time and material cost, and ranks the directions.
+
+Results are a design aid; the time and cost estimates are first-order and must be
+confirmed with the machine's own build preparation.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+HELP = "check a design for overhangs, supports, trapped powder, build time and cost"
+
+CAUTION = (
+    "Results are a design aid. Estimates of build time and cost are first-order; confirm "
+    "them, and the supports, with the machine's own build preparation."
+)
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """Options of ``buttress inspect``."""
+    parser.add_argument("design", help="results folder, .npy/.npz density array or closed .stl")
+    parser.add_argument("--out", required=True, help="folder for inspect.json/.csv/.png")
+    parser.add_argument("--problem", default=None,
+                        help="problem file giving element size, thickness, build and process "
+                             "values (default: the results folder's problem.toml)")
+    parser.add_argument("--directions", default=None, metavar="LIST",
+                        help="candidate build directions, comma-separated, e.g. "
+                             "--directions=+z,-z,+x (default: all axis directions)")
+    parser.add_argument("--element-size", type=float, default=None, metavar="H",
+                        help="voxel size for an array without a problem file, or for "
+                             "voxelising an STL")
+    parser.add_argument("--thickness", type=float, default=None,
+                        help="out-of-plane thickness of a 2D design (default: problem or 1)")
+    parser.add_argument("--overhang-angle", type=float, default=None, metavar="DEG",
+                        help="self-supporting angle from the plate (default: problem or 45)")
+    parser.add_argument("--weights", default="time=1,cost=1,support=1",
+                        help="weights of the ranking, e.g. time=1,cost=0,support=2")
+    parser.add_argument("--through-holes", action="store_true",
+                        help="2D designs: treat the design as a plate extruded to its thickness, "
+                             "so holes are open on both faces (no trapped powder)")
+    parser.add_argument("--overwrite", action="store_true",
+                        help="replace an inspect report already in --out")
+
+
+@dataclass(frozen=True)
+class LoadedDesign:
+    """A design read from disk with the settings that go with it."""
+
+    density: np.ndarray
+    element_size: float
+    thickness: float
+    overhang_angle: float
+    process: dict
+    mass_density: float | None
+    source: str
+
+
+def parse_weights(text: str) -> dict[str, float]:
+    """Parse ``"time=1,cost=0.5,support=2"`` into a dict.
+
+    Examples
+    --------
+    >>> parse_weights("time=2, support=0")
+    {'time': 2.0, 'support': 0.0}
+    """
+    weights: dict[str, float] = {}
+    for item in filter(None, (part.strip() for part in str(text).split(","))):
+        key, sep, value = item.partition("=")
+        key = key.strip()
+        if not sep or key not in ("time", "cost", "support"):
+            raise ValueError(
+                f"--weights: expected items like time=1,cost=1,support=1, got {item!r}"
+            )
+        try:
+            number = float(value)
+        except ValueError:
+            raise ValueError(f"--weights: {key} must be a number, got {value.strip()!r}") from None
+        if not math.isfinite(number) or number < 0:
+            raise ValueError(f"--weights: {key} must be a finite number >= 0, got {number}")
+        weights[key] = number
+    if not weights or sum(weights.values()) <= 0:
+        raise ValueError("--weights: at least one weight must be positive")
+    return weights
+
+
+def parse_directions(text: str | None, ndim: int) -> list[str] | None:
+    """Split ``"+x,-x,+z"`` into directions and check them for the design's dimension.
+
+    Examples
+    --------
+    >>> parse_directions("+y, -y", 2)
+    ['+y', '-y']
+    """
+    from topopt.build import all_directions
+
+    if text is None:
+        return None
+    out = [d.strip() for d in str(text).split(",") if d.strip()]
+    if not out:
+        raise ValueError("--directions: give at least one direction, e.g. --directions=+z,-z")
+    allowed = all_directions(ndim)
+    for d in out:
+        if d not in allowed:
+            raise ValueError(f"--directions: {d!r} is not a direction of a {ndim}D design; "
+                             f"expected some of {' '.join(allowed)}")
+    if len(set(out)) != len(out):
+        raise ValueError(f"--directions: a direction is repeated in {' '.join(out)}")
+    return out
+
+
+def _load_array(path: Path) -> np.ndarray:
+    try:
+        loaded = np.load(path, allow_pickle=False)
+    except (OSError, ValueError, EOFError) as exc:
+        reason = " ".join(str(exc).split())
+        raise ValueError(f"{path}: not a readable NumPy file ({reason})") from None
+    if isinstance(loaded, np.lib.npyio.NpzFile):
+        with loaded:
+            names = list(loaded.files)
+            if "density" in names:
+                name = "density"
+            elif len(names) == 1:
+                name = names[0]
+            else:
+                raise ValueError(f"{path}: holds several arrays ({', '.join(names)}) and none "
+                                 "named 'density'")
+            try:
+                array = loaded[name]
+            except ValueError as exc:
+                raise ValueError(f"{path}: array {name!r} is not plain numbers ({exc})") from None
+    else:
+        array = loaded
+    array = np.asarray(array)
+    if array.ndim not in (2, 3):
+        raise ValueError(f"{path}: the density must be a 2D or 3D array, got shape {array.shape}")
+    if array.dtype != bool and not np.issubdtype(array.dtype, np.number):
+        raise ValueError(f"{path}: the density must hold numbers, got dtype {array.dtype}")
+    if not np.all(np.isfinite(array)):
+        raise ValueError(f"{path}: the density holds NaN or infinite values")
+    return array
+
+
+def load_design(args: argparse.Namespace) -> LoadedDesign:
+    """Read DESIGN (and the problem file) as data; raise ValueError with one line."""
+    from topopt.build import PROCESS_DEFAULTS
+    from topopt.problem import load_problem
+    from topopt.surface import open_edges, read_stl, voxelize
+
+    path = Path(args.design)
+    problem_path = Path(args.problem) if args.problem else None
+    if path.is_dir():
+        if not (path / "result.npz").is_file():
+            raise ValueError(f"{path}: not a results folder (no result.npz)")
+        density = _load_array(path / "result.npz")
+        if problem_path is None and (path / "problem.toml").is_file():
+            problem_path = path / "problem.toml"
+    elif not path.exists():
+        raise ValueError(f"{path}: no such file or folder")
+    elif path.suffix.lower() in (".npy", ".npz"):
+        density = _load_array(path)
+    elif path.suffix.lower() == ".stl":
+        if args.element_size is None:
+            raise ValueError("--element-size is needed to voxelise an STL surface")
+        vertices, faces = read_stl(path)
+        if open_edges(faces):
+            raise ValueError(f"{path}: the surface is not closed ({open_edges(faces)} edges do "
+                             "not belong to exactly two triangles)")
+        density = voxelize(vertices, faces, element_size=_positive(args.element_size,
+                                                                    "--element-size"))
+        if not density.any():
+            raise ValueError(f"{path}: no voxel centre lies inside the surface at element size "
+                             f"{args.element_size}; use a smaller --element-size")
+    else:
+        raise ValueError(f"{path}: expected a results folder, a .npy/.npz array or an .stl file")
+
+    problem = load_problem(problem_path) if problem_path is not None else None
+    if problem is not None and path.suffix.lower() != ".stl":
+        if tuple(problem.grid.shape) != tuple(density.shape):
+            raise ValueError(f"{path}: density shape {density.shape} does not match the problem "
+                             f"grid {tuple(problem.grid.shape)}")
+    if args.element_size is not None:
+        element_size = _positive(args.element_size, "--element-size")
+    elif problem is not None:
+        element_size = problem.grid.element_size
+    else:
+        raise ValueError("--element-size (or --problem) is needed to give the voxel size")
+    if args.thickness is not None:
+        thickness = _positive(args.thickness, "--thickness")
+    else:
+        thickness = problem.grid.thickness if problem is not None else 1.0
+    if args.overhang_angle is not None:
+        angle = float(args.overhang_angle)
+    else:
+        angle = problem.build.overhang_angle if problem is not None else 45.0
+    if problem is not None:
+        process = {k: float(getattr(problem.process, k)) for k in PROCESS_DEFAULTS}
+        mass_density = problem.material.mass_density
+    else:
+        process, mass_density = dict(PROCESS_DEFAULTS), None
+    return LoadedDesign(density=density, element_size=element_size, thickness=thickness,
+                        overhang_angle=angle, process=process, mass_density=mass_density,
+                        source=str(path))
+
+
+def _positive(value: float, name: str) -> float:
+    value = float(value)
+    if not (math.isfinite(value) and value > 0):
+        raise ValueError(f"{name} must be a positive number, got {value}")
+    return value
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run ``buttress inspect``."""
+    from topopt.build import REPORT_FIELDS, analyze_design
+
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise ValueError(f"{out}: exists and is not a folder")
+    if (out / "inspect.json").exists() and not args.overwrite:
+        raise ValueError(
+            f"{out}: holds an inspect report already; use --overwrite or another --out"
+        )
+    weights = parse_weights(args.weights)
+    design = load_design(args)
+    directions = parse_directions(args.directions, design.density.ndim)
+    reports, best, masks = analyze_design(
+        design.density,
+        element_size=design.element_size,
+        directions=directions,
+        overhang_angle=design.overhang_angle,
+        thickness=design.thickness,
+        process=design.process,
+        mass_density=design.mass_density,
+        weights=weights,
+        keep_masks=True,
+        through_holes=bool(args.through_holes),
+    )
+    rows = [r.as_dict() for r in reports]
+    report = {
+        "directions": rows,
+        "best": best,
+        "process": {**design.process, "mass_density": design.mass_density,
+                    "overhang_angle": design.overhang_angle},
+        "through_holes": bool(args.through_holes) and design.density.ndim == 2,
+        "weights": weights,
+        "design": {"source": design.source, "shape": list(design.density.shape),
+                   "element_size": design.element_size,
+                   "thickness": design.thickness if design.density.ndim == 2 else None},
+        "caution": CAUTION,
+    }
+    # every figure is computed before anything is written
+    from topopt.export import write_csv, write_json
+
+    out.mkdir(parents=True, exist_ok=True)
+    write_csv(out / "inspect.csv", rows, list(REPORT_FIELDS))
+    write_inspect_png(out / "inspect.png", reports, masks, best=best,
+                      element_size=design.element_size)
+    write_json(out / "inspect.json", report)  # last: its presence marks a finished report
+    _print_table(reports, best, design.mass_density is None)
+    print(f"report: {out}/inspect.json, table: {out}/inspect.csv, picture: {out}/inspect.png")
+    return 0
+
+
+def _print_table(reports, best: str, no_mass: bool) -> None:
+    print(f"{'direction':>9} {'height':>8} {'layers':>6} {'overhang':>9} {'support':>9} "
+          f"{'unremov.':>9} {'trapped':>9} {'time_h':>7} {'cost':>9} {'score':>6}")
+    for r in reports:
+        print(f"{r.direction:>9} {r.build_height:8.4g} {r.layers:6d} {r.overhang_area:9.4g} "
+              f"{r.support_volume:9.4g} {r.unremovable_support_volume:9.4g} "
+              f"{r.trapped_powder_volume:9.4g} {r.build_time_h:7.3g} {r.material_cost:9.4g} "
+              f"{r.score:6.3f}")
+    if no_mass:
+        print("no mass density given ([material] mass_density): mass and cost not estimated")
+    for r in reports:
+        if r.trapped_cavities:
+            print(f"warning: {r.direction}: {r.trapped_cavities} closed cavities trap "
+                  f"{r.trapped_powder_volume:.4g} of powder")
+        if r.unremovable_support_volume > 0:
+            print(f"warning: {r.direction}: {r.unremovable_support_volume:.4g} of support "
+                  "lies where a tool cannot reach it")
+    print(f"best build direction: {best}")
+    print(CAUTION)
+
+
+# ----------------------------------------------------------------------- picture
+_COLOURS = {
+    "void": (1.0, 1.0, 1.0),
+    "solid": (0.62, 0.64, 0.68),
+    "support": (0.55, 0.75, 0.95),
+    "unremovable": (0.95, 0.6, 0.2),
+    "trapped": (0.6, 0.4, 0.8),
+    "overhang": (0.85, 0.1, 0.1),
+}
+
+
+def _panel_image(masks, direction: str) -> np.ndarray:
+    """RGB image in the build frame (rows = layers from the plate, columns = across)."""
+    from topopt.build import first_occupied_layer, to_build_frame
+
+    # the analysis places the part on the plate; so does the picture
+    lowest = first_occupied_layer(to_build_frame(masks.solid, direction))
+
+    def frame(a: np.ndarray) -> np.ndarray:
+        b = to_build_frame(a, direction)[lowest:]
+        # a 3D design is seen from the side: project along the last axis
+        return b.any(axis=-1) if b.ndim == 3 else b
+
+    solid = frame(masks.solid)
+    support = frame(masks.support)
+    unremovable = frame(masks.support & ~masks.accessible)
+    trapped = frame(masks.trapped)
+    overhang = frame(masks.needs_support)
+    image = np.ones(solid.shape + (3,))
+    for name, mask in (("trapped", trapped), ("support", support),
+                       ("unremovable", unremovable), ("solid", solid),
+                       ("overhang", overhang)):
+        image[mask] = _COLOURS[name]
+    if masks.solid.ndim == 3:
+        # seen through: supports behind or in front of the part show as a tint
+        behind = solid & support & ~overhang
+        tint = np.where(unremovable[..., None], _COLOURS["unremovable"], _COLOURS["support"])
+        image[behind] = 0.5 * np.asarray(_COLOURS["solid"]) + 0.5 * tint[behind]
+    return image
+
+
+def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -> None:
+    """One panel per direction (build direction up, plate at the bottom) and bar charts."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    from matplotlib.patches import Patch
+
+    from topopt.build import parse_direction
+    from topopt.export import atomic_write
+
+    n = len(reports)
+    cols = min(n, 3)
+    rows = math.ceil(n / cols)
+    fig = plt.figure(figsize=(3.4 * cols, 3.0 * rows + 2.8), dpi=110)
+    grid = fig.add_gridspec(rows + 1, cols, height_ratios=[3.0] * rows + [2.4])
+    ndim = masks[0].solid.ndim
+    for k, (r, m) in enumerate(zip(reports, masks, strict=True)):
+        ax = fig.add_subplot(grid[k // cols, k % cols])
+        image = _panel_image(m, r.direction)
+        axis, _ = parse_direction(r.direction, ndim)
+        across = [a for a in range(ndim) if a != axis][0]
+        ax.imshow(image, origin="lower", interpolation="nearest",
+                  extent=(0, image.shape[1] * element_size, 0, image.shape[0] * element_size))
+        ax.axhline(0, color="k", lw=3)
+        ax.set_xlabel("xyz"[across] + (" (seen from the side)" if ndim == 3 else ""), fontsize=7)
+        ax.set_ylabel(f"build {r.direction} (plate at the bottom)", fontsize=7)
+        ax.tick_params(labelsize=6)
+        mark = "  [best]" if r.direction == best else ""
+        ax.set_title(f"{r.direction}{mark}: support {r.support_volume:.3g}, "
+                     f"{r.build_time_h:.3g} h", fontsize=8)
+    legend = [Patch(color=_COLOURS[k], label=label) for k, label in (
+        ("solid", "part"), ("overhang", "surface needing support"), ("support", "support"),
+        ("unremovable", "support out of tool reach"), ("trapped", "trapped powder"))]
+    fig.legend(handles=legend, loc="upper center", ncol=5, fontsize=7, frameon=False)
+    names = [r.direction for r in reports]
+    bars = (("support volume", [r.support_volume for r in reports]),
+            ("build time (h)", [r.build_time_h for r in reports]),
+            ("material cost", [r.material_cost for r in reports]))
+    sub = grid[rows, :].subgridspec(1, 3, wspace=0.35)
+    for k, (label, values) in enumerate(bars):
+        ax = fig.add_subplot(sub[0, k])
+        values = [0.0 if not np.isfinite(v) else v for v in values]
+        colours = ["tab:green" if d == best else "tab:gray" for d in names]
+        ax.bar(names, values, color=colours)
+        ax.set_title(label + (" (no mass density)" if k == 2 and not any(values) else ""),
+                     fontsize=8)
+        ax.tick_params(labelsize=7)
+    fig.text(0.01, 0.005, CAUTION, fontsize=6, color="0.35")
+    fig.tight_layout(rect=(0, 0.02, 1, 0.96))
+    atomic_write(path, lambda h: fig.savefig(h, format="png"))
+    plt.close(fig)
