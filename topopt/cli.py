@@ -16,6 +16,7 @@ import sys
 COMMANDS: dict[str, str] = {
     "optimize": "topopt.commands.optimize",
     "sweep": "topopt.commands.sweep",
+    "compare": "topopt.commands.compare",
     "inspect": "topopt.commands.inspect",
     "export": "topopt.commands.export",
 }

@@ -1,0 +1,342 @@
+"""Optimise one problem free and self-supporting for several build directions, side by side.
+
+:func:`compare` runs the problem with the printability filter off (``"none"``) and on
+for each requested build direction, each into its own results folder, then writes
+``comparison.csv`` (one row per run) and ``comparison.png`` (the designs with the build
+plate drawn on each, and a bar chart of the compliance increase against the free
+design). Runs go to a pool of processes limited to the core count, each with its BLAS
+held to one thread, so parallel runs do not fight over the cores.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import sys
+import time
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+
+#: Columns of ``comparison.csv``. ``free_design_unsupported_elements`` is the number of
+#: unsupported elements the free design would have if built along that row's direction.
+COLUMNS = [
+    "direction",
+    "compliance",
+    "compliance_increase_percent",
+    "volume_fraction",
+    "unsupported_elements",
+    "overhang_area",
+    "grey_level",
+    "elapsed_s",
+    "iterations",
+    "converged",
+    "free_design_unsupported_elements",
+    "results",
+]
+
+_FOLDER = {"none": "none", "+": "plus-", "-": "minus-"}
+
+
+def folder_name(direction: str) -> str:
+    """Results-folder name of a run: ``none``, ``plus-x``, ``minus-z`` ...
+
+    Examples
+    --------
+    >>> folder_name("-y"), folder_name("none")
+    ('minus-y', 'none')
+    """
+    if direction == "none":
+        return "none"
+    return _FOLDER[direction[0]] + direction[1]
+
+
+def _check_directions(directions, dim: int) -> list[str]:
+    from filters.printability import DIRECTIONS
+
+    allowed = DIRECTIONS[dim]
+    if directions is None:
+        return list(allowed)
+    if isinstance(directions, str):
+        directions = [d.strip() for d in directions.split(",") if d.strip()]
+    directions = list(directions)
+    if not directions:
+        raise ValueError("directions must name at least one build direction")
+    for d in directions:
+        if d not in allowed:
+            raise ValueError(
+                f"directions: {d!r} is not a build direction of a {dim}D domain; "
+                f"expected some of {','.join(allowed)}"
+            )
+    if len(set(directions)) != len(directions):
+        raise ValueError(f"directions: each direction may appear once, got {','.join(directions)}")
+    return directions
+
+
+def _check_workers(workers, n_runs: int) -> int:
+    cores = os.cpu_count() or 1
+    if workers is None:
+        return max(1, min(cores, n_runs))
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise ValueError(f"workers must be a positive integer, got {workers!r}")
+    return max(1, min(workers, cores, n_runs))
+
+
+def _run_one(source: dict, path: str, folder: str) -> dict:
+    """Optimise one variant and write its results folder (runs in a worker process)."""
+    from topopt.driver import optimize
+    from topopt.export import summary_dict, write_results
+    from topopt.problem import problem_from_dict
+
+    problem = problem_from_dict(source, source=path)
+    result = optimize(problem)
+    write_results(result, problem, folder)
+    return summary_dict(result, problem)
+
+
+def _run_one_single_thread(source: dict, path: str, folder: str) -> dict:
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1):
+        return _run_one(source, path, folder)
+
+
+def compare(
+    problem,
+    *,
+    directions: Sequence[str] | str | None = None,
+    out_dir: str | Path,
+    workers: int | None = None,
+    progress: bool = False,
+    overwrite: bool = False,
+) -> list[dict]:
+    """Optimise ``problem`` free and for each build direction; write the comparison.
+
+    Parameters
+    ----------
+    problem : Problem
+        The problem; its own ``[build] direction`` is ignored, its overhang angle used.
+    directions : sequence of str or str, optional
+        Build directions to run besides the free design (``"none"``), e.g.
+        ``["+x", "-y"]`` or ``"+x,-y"``. Default: every axis direction of the domain.
+    out_dir : str or Path
+        Folder for ``comparison.csv``, ``comparison.png`` and one results folder per
+        run (``none``, ``plus-x``, ``minus-y`` ...).
+    workers : int, optional
+        Runs at the same time; default and upper limit: the number of cores.
+    progress : bool
+        Print one line per finished run to standard error.
+    overwrite : bool
+        Replace a comparison already in ``out_dir``; otherwise that is an error.
+
+    Returns
+    -------
+    list of dict
+        One row per run with the keys of :data:`COLUMNS`, the free design first.
+
+    Raises
+    ------
+    ValueError
+        For unknown or repeated directions, a bad ``workers`` value, or an ``out_dir``
+        that holds results already.
+
+    Examples
+    --------
+    >>> # rows = compare(load_problem("examples/mbb-beam.toml"), out_dir="cmp")
+    >>> # [(r["direction"], r["compliance_increase_percent"]) for r in rows]
+    """
+    from topopt.export import write_csv
+    from topopt.problem import with_settings
+
+    runs = ["none"] + _check_directions(directions, problem.grid.dim)
+    n_workers = _check_workers(workers, len(runs))
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise ValueError(f"{out}: exists and is not a folder")
+    taken = [out / "comparison.csv"] + [out / folder_name(d) / "summary.json" for d in runs]
+    if not overwrite and any(p.exists() for p in taken):
+        raise ValueError(f"{out}: holds results already; use overwrite or another folder")
+    variants = {d: with_settings(problem, {"build.direction": d}) for d in runs}
+    out.mkdir(parents=True, exist_ok=True)
+
+    summaries: dict[str, dict] = {}
+    t0 = time.perf_counter()
+
+    def done(direction: str, summary: dict) -> None:
+        summaries[direction] = summary
+        if progress:
+            print(
+                f"compare: {direction:>4} done: compliance {summary['compliance']:.6g}, "
+                f"{summary['iterations']} iterations, {summary['elapsed_s']:.1f} s "
+                f"({len(summaries)}/{len(runs)}, {time.perf_counter() - t0:.0f} s so far)",
+                file=sys.stderr,
+                flush=True,
+            )
+
+    jobs = [
+        (d, dict(variants[d].source), variants[d].path, str(out / folder_name(d))) for d in runs
+    ]
+    if n_workers == 1:
+        for d, source, path, folder in jobs:
+            done(d, _run_one(source, path, folder))
+    else:
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor, as_completed
+
+        # "spawn": a fresh interpreter per worker; forking a process whose BLAS already
+        # started threads can hang.
+        context = multiprocessing.get_context("spawn")
+        with ProcessPoolExecutor(max_workers=n_workers, mp_context=context) as pool:
+            futures = {pool.submit(_run_one_single_thread, *job[1:]): job[0] for job in jobs}
+            for future in as_completed(futures):
+                done(futures[future], future.result())
+
+    densities = {d: _load_density(out / folder_name(d)) for d in runs}
+    rows = comparison_rows(runs, summaries, densities, problem)
+    write_csv(out / "comparison.csv", rows, COLUMNS)
+    plot_comparison(rows, densities, problem, out / "comparison.png")
+    return rows
+
+
+def _load_density(folder: Path) -> np.ndarray:
+    with np.load(folder / "result.npz", allow_pickle=False) as data:
+        return np.array(data["density"])
+
+
+def comparison_rows(runs, summaries: dict, densities: dict, problem) -> list[dict]:
+    """Rows of ``comparison.csv`` from the runs' summaries (free design first)."""
+    from filters.printability import unsupported_count
+
+    free = summaries["none"]["compliance"]
+    angle = problem.build.overhang_angle
+    rows = []
+    for d in runs:
+        s = summaries[d]
+        increase = 100.0 * (s["compliance"] - free) / free if free else math.nan
+        rows.append(
+            {
+                "direction": d,
+                "compliance": s["compliance"],
+                "compliance_increase_percent": 0.0 if d == "none" else increase,
+                "volume_fraction": s["volume_fraction"],
+                "unsupported_elements": s.get("unsupported_elements"),
+                "overhang_area": s.get("overhang_area"),
+                "grey_level": s["grey_level"],
+                "elapsed_s": s["elapsed_s"],
+                "iterations": s["iterations"],
+                "converged": s["converged"],
+                "free_design_unsupported_elements": None
+                if d == "none"
+                else unsupported_count(densities["none"], direction=d, overhang_angle=angle),
+                "results": folder_name(d),
+            }
+        )
+    return rows
+
+
+def plot_comparison(rows: list[dict], densities: dict, problem, path: str | Path) -> None:
+    """Draw the designs side by side, the build plate on each, and the compliance increase."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from topopt.export import CAUTION, atomic_write, draw_design_2d, draw_design_3d
+
+    grid = problem.grid
+    n = len(rows)
+    cols = n if n <= 5 else math.ceil(n / 2)
+    design_rows = math.ceil(n / cols)
+    aspect = grid.shape[1] / grid.shape[0] if grid.dim == 2 else 0.9
+    panel_w = 3.2
+    panel_h = max(1.4, panel_w * aspect) + 0.6
+    fig = plt.figure(figsize=(panel_w * cols, panel_h * design_rows + 2.8), dpi=110)
+    spec = fig.add_gridspec(design_rows + 1, cols, height_ratios=[panel_h] * design_rows + [2.3])
+    size = np.array(grid.shape) * grid.element_size
+    for i, row in enumerate(rows):
+        d = row["direction"]
+        kind = {"projection": "3d"} if grid.dim == 3 else {}
+        ax = fig.add_subplot(spec[i // cols, i % cols], **kind)
+        if grid.dim == 2:
+            draw_design_2d(ax, densities[d], grid.element_size)
+            _draw_plate_2d(ax, d, size)
+        else:
+            draw_design_3d(ax, densities[d], grid.element_size)
+            _draw_plate_3d(ax, d, size)
+        if d == "none":
+            title = f"free (no build direction)\ncompliance {row['compliance']:.4g}"
+        else:
+            title = (
+                f"built along {d}: {row['compliance_increase_percent']:+.1f} %\n"
+                f"unsupported {row['unsupported_elements']} "
+                f"(free design: {row['free_design_unsupported_elements']})"
+            )
+        ax.set_title(title, fontsize=8)
+        ax.tick_params(labelsize=6)
+    bar_ax = fig.add_subplot(spec[design_rows, :])
+    built = [r for r in rows if r["direction"] != "none"]
+    labels = [r["direction"] for r in built]
+    values = [r["compliance_increase_percent"] for r in built]
+    bars = bar_ax.bar(labels, values, color="#4a6fa5")
+    bar_ax.bar_label(bars, fmt="%+.1f %%", fontsize=7)
+    bar_ax.axhline(0.0, color="0.3", linewidth=0.8)
+    bar_ax.set_ylabel("compliance increase\nvs free design (%)", fontsize=8)
+    bar_ax.set_xlabel("build direction (self-supporting design)", fontsize=8)
+    bar_ax.tick_params(labelsize=7)
+    lo, hi = min(values + [0.0]), max(values + [0.0])
+    pad = 0.15 * (hi - lo or 1.0)
+    bar_ax.set_ylim(lo - pad, hi + pad)
+    fig.suptitle(
+        f"{problem.name}: free design and self-supporting designs "
+        f"(overhang angle {problem.build.overhang_angle:g} deg; plate drawn in orange)",
+        fontsize=9,
+    )
+    fig.text(0.01, 0.005, CAUTION, fontsize=5.5, color="0.35")
+    fig.tight_layout(rect=(0, 0.02, 1, 0.97))
+    atomic_write(path, lambda h: fig.savefig(h, format="png"))
+    plt.close(fig)
+
+
+def _draw_plate_2d(ax, direction: str, size) -> None:
+    """Draw a thick orange bar along the side where the build plate lies."""
+    if direction == "none":
+        return
+    axis = "xy".index(direction[1])
+    at_low = direction[0] == "+"
+    w, h = size
+    thick = 0.04 * max(w, h)
+    if axis == 1:
+        y0 = -thick if at_low else h
+        ax.add_patch(_plate_rectangle((0, y0), w, thick))
+        ax.set_ylim(-thick * 1.2, h + thick * 1.2)
+    else:
+        x0 = -thick if at_low else w
+        ax.add_patch(_plate_rectangle((x0, 0), thick, h))
+        ax.set_xlim(-thick * 1.2, w + thick * 1.2)
+
+
+def _plate_rectangle(xy, width, height):
+    """Make an orange filled rectangle patch (the build plate)."""
+    from matplotlib.patches import Rectangle
+
+    return Rectangle(xy, width, height, color="#d9822b", clip_on=False)
+
+
+def _draw_plate_3d(ax, direction: str, size) -> None:
+    """Draw a translucent orange square on the plate face of the box."""
+    if direction == "none":
+        return
+    from mpl_toolkits.mplot3d.art3d import Poly3DCollection
+
+    axis = "xyz".index(direction[1])
+    level = 0.0 if direction[0] == "+" else size[axis]
+    others = [a for a in range(3) if a != axis]
+    corners = []
+    for u, v in ((0, 0), (1, 0), (1, 1), (0, 1)):
+        p = [0.0, 0.0, 0.0]
+        p[axis] = level
+        p[others[0]] = u * size[others[0]]
+        p[others[1]] = v * size[others[1]]
+        corners.append(p)
+    ax.add_collection3d(Poly3DCollection([corners], facecolors="#d9822b", alpha=0.45))
