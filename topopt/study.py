@@ -396,7 +396,7 @@ def _run_dask(
             client = Client(cluster)
         else:
             try:
-                client = Client(scheduler, timeout=30)
+                client = Client(scheduler, timeout=15)
             except OSError as exc:
                 raise ValueError(f"--scheduler {scheduler}: cannot reach the scheduler "
                                  f"({_one_line(exc)})") from None
@@ -673,7 +673,7 @@ def plot_study(rows: list[dict], keys: tuple[str, ...], path: str | Path, *, tit
     colours = {d: plt.get_cmap("tab10")(i % 10) for i, d in enumerate(all_dirs)}
     for ax, key in zip(flat, x_keys, strict=False):
         _plot_against(ax, rows, ok, key, keys, directions, colours)
-    _plot_tradeoff(flat[len(x_keys)], ok, keys)
+    _plot_tradeoff(flat[len(x_keys)], ok, keys, directions, colours)
     for ax in flat[n_panels:]:
         ax.set_visible(False)
     heading = title or "study"
@@ -706,7 +706,7 @@ def _plot_against(ax, rows, ok, key, keys, directions, colours) -> None:
         xs = [position[_display(r[key])] for r in members]
         ys = [r["compliance"] for r in members]
         j = combos.index(combo)
-        label = f"build {direction}" + "".join(
+        label = _direction_label(direction) + "".join(
             f", {k.split('.')[-1]}={v}" for k, v in zip(others, combo, strict=True))
         ax.plot(xs, ys, linestyle=styles[j % len(styles)], marker=markers[j % len(markers)],
                 color=colours.get(direction), label=label, linewidth=1.3, markersize=4)
@@ -721,7 +721,11 @@ def _plot_against(ax, rows, ok, key, keys, directions, colours) -> None:
         ax.text(0.5, 0.5, "no finished case", ha="center", va="center", transform=ax.transAxes)
 
 
-def _plot_tradeoff(ax, ok, keys) -> None:
+def _direction_label(direction: str) -> str:
+    return "unconstrained" if direction == "none" else f"build {direction}"
+
+
+def _plot_tradeoff(ax, ok, keys, directions, colours) -> None:
     pts = [r for r in ok if _is_number(r.get("support_volume"))]
     ax.set_xlabel("support volume (length unit^3)")
     ax.set_ylabel("compliance")
@@ -734,13 +738,29 @@ def _plot_tradeoff(ax, ok, keys) -> None:
     xs = [r["support_volume"] for r in pts]
     ys = [r["compliance"] for r in pts]
     front = non_dominated(list(zip(xs, ys, strict=True)))
-    ax.scatter(xs, ys, s=18, color="0.45", label="case", zorder=2)
+    for direction in dict.fromkeys(directions.get(r["case"], "") for r in pts):
+        members = [r for r in pts if directions.get(r["case"], "") == direction]
+        ax.scatter([r["support_volume"] for r in members], [r["compliance"] for r in members],
+                   s=18, color=colours.get(direction), label=_direction_label(direction),
+                   zorder=2)
     fx = [x for x, f in zip(xs, front, strict=True) if f]
     fy = [y for y, f in zip(ys, front, strict=True) if f]
     order = sorted(range(len(fx)), key=lambda i: fx[i])
-    ax.plot([fx[i] for i in order], [fy[i] for i in order], color="tab:red", linewidth=1,
+    ax.plot([fx[i] for i in order], [fy[i] for i in order], color="black", linewidth=0.8,
             drawstyle="steps-post", zorder=1)
-    ax.scatter(fx, fy, s=60, facecolors="none", edgecolors="tab:red", linewidths=1.5,
+    ax.scatter(fx, fy, s=70, facecolors="none", edgecolors="black", linewidths=1.2,
                label="non-dominated", zorder=3)
+    # Number the front (by support volume) and list what each case is, so close
+    # points keep readable labels.
+    listed = sorted((r for r, f in zip(pts, front, strict=True) if f),
+                    key=lambda r: r["support_volume"])
+    lines = [", ".join(k.split(".")[-1] for k in keys)]
+    for n, r in enumerate(listed, start=1):
+        ax.annotate(str(n), (r["support_volume"], r["compliance"]), fontsize=7,
+                    xytext=(5, 5), textcoords="offset points")
+        lines.append(f"{n}: " + ", ".join(_display(r[k]) for k in keys))
+    ax.text(0.98, 0.98 - 0.045 * (len(colours) + 1), "\n".join(lines[:13]), fontsize=6,
+            ha="right", va="top", transform=ax.transAxes,
+            bbox={"facecolor": "white", "alpha": 0.8, "edgecolor": "0.7"})
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7)
