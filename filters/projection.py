@@ -66,14 +66,14 @@ def project(x: np.ndarray, *, beta: float, eta: float) -> np.ndarray:
 
 
 def _dproject_dx(x: np.ndarray, beta: float, eta: float) -> np.ndarray:
-    """Derivative of :func:`project` with respect to x (elementwise)."""
+    """Return d project / d x (elementwise)."""
     denom = math.tanh(beta * eta) + math.tanh(beta * (1.0 - eta))
     z = np.clip(beta * (x - eta), -_Z_CLIP, _Z_CLIP)
     return beta / np.cosh(z) ** 2 / denom
 
 
 def _dproject_deta(x: np.ndarray, beta: float, eta: float) -> np.ndarray:
-    """Derivative of :func:`project` with respect to eta (elementwise)."""
+    """Return d project / d eta (elementwise)."""
     a = math.tanh(beta * eta)
     b = math.tanh(beta * (1.0 - eta))
     denom = a + b
@@ -154,9 +154,7 @@ class HeavisideProjection:
         Choose eta on every forward call so that the projected mean equals the input mean.
     """
 
-    def __init__(
-        self, shape: tuple[int, ...], *, beta: float, eta: float, preserve_volume: bool
-    ):
+    def __init__(self, shape: tuple[int, ...], *, beta: float, eta: float, preserve_volume: bool):
         self.shape = tuple(int(n) for n in shape)
         self._beta = _check_beta(beta)
         self.eta = _check_eta(eta)
