@@ -223,6 +223,35 @@ def _surface_tilt(solid_b: np.ndarray, *, smoothing: float) -> np.ndarray:
     return np.degrees(np.arctan2(horizontal, vertical))
 
 
+def _slope_held(
+    solid_b: np.ndarray, down_b: np.ndarray, *, angle: float, layers: int
+) -> np.ndarray:
+    """Down-facing voxels whose staircase below stays within the overhang angle.
+
+    A voxel in layer k passes when, for every j = 1 .. ``layers`` above the plate, layer
+    k - j holds solid within a horizontal distance j / tan(angle) (in voxels). That is
+    the slope of the surface under it measured over several layers: it accepts a 45
+    degree staircase and the peak of a diamond-shaped hole (where smoothed normals point
+    straight down), and rejects a 30 degree staircase, whose single steps alternate
+    between 1 and 2 voxels.
+    """
+    from scipy import ndimage
+
+    reach = 1.0 / math.tan(math.radians(angle))
+    n_layers = solid_b.shape[0]
+    distance = np.full(solid_b.shape, np.inf)
+    for k in range(n_layers):
+        if solid_b[k].any():
+            distance[k] = ndimage.distance_transform_edt(~solid_b[k])
+    held = down_b.copy()
+    for j in range(1, int(layers) + 1):
+        if j >= n_layers:
+            break
+        # layers k - j < 0 lie under the plate, which holds everything
+        held[j:] &= distance[:-j] <= j * reach + 1e-9
+    return held
+
+
 def _support_columns(needs_b: np.ndarray, solid_b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Void voxels between each face needing support and the part or plate below."""
     support = np.zeros_like(solid_b)
@@ -304,6 +333,7 @@ def direction_masks(
     element_size: float = 1.0,
     tool_access: float = PROCESS_DEFAULTS["tool_access"],
     smoothing: float = 1.5,
+    window: int = 6,
     through_holes: bool = False,
 ) -> BuildMasks:
     """Voxel masks of overhangs, supports, removable space and trapped powder.
@@ -324,6 +354,8 @@ def direction_masks(
         Narrowest opening (length unit) through which a support can be removed.
     smoothing : float
         Gaussian width (voxels) used to estimate surface normals.
+    window : int
+        Layers over which the slope under a face is measured (see Notes).
     through_holes : bool
         2D only. False (default): the design is a section and a void closed in the plane
         is a closed cavity. True: the design is a plate extruded to its thickness, so
@@ -340,9 +372,14 @@ def direction_masks(
     Notes
     -----
     A down-facing face needs support when its voxel fails the one-layer overhang rule of
-    :func:`filters.printability.supported_mask`, or when the smoothed surface there is
-    tilted less than ``overhang_angle`` from the plate (by more than half a degree, so
-    that a staircase at exactly the overhang angle passes).
+    :func:`filters.printability.supported_mask`, or when the surface there is shallower
+    than ``overhang_angle`` both locally (the smoothed normal is tilted less than the
+    angle from straight down, by more than half a degree) and over the ``window``
+    layers below (some layer k - j holds no solid within j / tan(angle) voxels). The
+    one-layer rule alone passes half the faces of a 30 degree slope, whose staircase
+    steps alternate between one and two voxels; the normal alone flags the peak of a
+    diamond-shaped hole. A design that passes the 45-degree one-layer rule everywhere
+    also passes the window test, so it needs no support here either.
 
     Examples
     --------
@@ -371,7 +408,8 @@ def direction_masks(
     supported_b = to_build_frame(supported.astype(bool), direction)
     down_b = _down_facing(solid_b)
     tilt_b = _surface_tilt(solid_b, smoothing=smoothing)
-    needs_b = down_b & (~supported_b | (tilt_b < angle - 0.5))
+    shallow_b = (tilt_b < angle - 0.5) & ~_slope_held(solid_b, down_b, angle=angle, layers=window)
+    needs_b = down_b & (~supported_b | shallow_b)
     support_b, on_plate_b = _support_columns(needs_b, solid_b)
     width = math.ceil(float(tool_access) / float(element_size) - 1e-9)
     if through_holes and solid.ndim == 2:
