@@ -277,3 +277,43 @@ def test_sigint_to_a_running_process_then_resume(tmp_path, finished):
     reference = tmp_path / "reference"
     assert main(["optimize", str(problem), "--out", str(reference), "--quiet"]) == 0
     assert_same_run(read_folder(out), read_folder(reference))
+
+
+PROBLEM_3D = """\
+name = "small 3D mount"
+
+[domain]
+shape = [8, 4, 4]
+element_size = 2.0
+
+[material]
+youngs_modulus = 200000.0
+poisson_ratio = 0.3
+
+[[restraints]]
+where = { x = [0.0, 0.0] }
+
+[[loads]]
+where = { x = [16.0, 16.0], y = [0.0, 0.0], z = [2.0, 6.0] }
+force = [0.0, -100.0, 10.0]
+
+[[passive]]
+where = { center = [8.0, 4.0, 0.0], radius = 1.5, axis = "z" }
+state = "void"
+
+[optimize]
+volume_fraction = 0.3
+filter_radius = 3.0
+max_iterations = 4
+"""
+
+
+def test_reported_compliance_matches_recomputation_3d(tmp_path, skfem_reference):
+    out = tmp_path / "out"
+    problem = write_problem(tmp_path, PROBLEM_3D)
+    assert main(["optimize", str(problem), "--out", str(out), "--quiet"]) == 0
+    got = read_folder(out)
+    assert got["arrays"]["density"].shape == (8, 4, 4)
+    ref = skfem_reference.compliance(got["problem"], got["arrays"]["density"])
+    reported = got["summary"]["compliance"]
+    assert abs(reported - ref) / ref < 1e-8, (reported, ref)
