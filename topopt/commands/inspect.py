@@ -222,6 +222,7 @@ def _positive(value: float, name: str) -> float:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``buttress inspect``."""
+    from filters.printability import enforced_overhang_angle
     from topopt.build import REPORT_FIELDS, analyze_design
 
     out = Path(args.out)
@@ -251,7 +252,8 @@ def run(args: argparse.Namespace) -> int:
         "directions": rows,
         "best": best,
         "process": {**design.process, "mass_density": design.mass_density,
-                    "overhang_angle": design.overhang_angle},
+                    "overhang_angle": design.overhang_angle,
+                    "enforced_overhang_angle": enforced_overhang_angle(design.overhang_angle)},
         "through_holes": bool(args.through_holes) and design.density.ndim == 2,
         "weights": weights,
         "design": {"source": design.source, "shape": list(design.density.shape),
