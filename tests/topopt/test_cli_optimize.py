@@ -169,6 +169,26 @@ def test_quiet_is_silent_and_default_reports(tmp_path, capsys):
     assert "compliance" in captured.out and str(tmp_path / "v") in captured.out
 
 
+@pytest.mark.parametrize("extra", [["--solver", "nonsense"], ["--overwrite", "--solver", "x"]])
+def test_bad_solver_option_leaves_results_alone(finished, capsys, extra):
+    before = {p.name: (p.read_bytes(), p.stat().st_mtime_ns) for p in finished.iterdir()}
+    problem = finished.parent / "problem-in.toml"
+    code = main(["optimize", str(problem), "--out", str(finished), "--quiet", *extra])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "Traceback" not in err
+    after = {p.name: (p.read_bytes(), p.stat().st_mtime_ns) for p in finished.iterdir()}
+    assert after == before
+
+
+def test_out_is_a_file(tmp_path, capsys):
+    target = tmp_path / "taken"
+    target.write_text("keep me")
+    code = main(["optimize", str(write_problem(tmp_path)), "--out", str(target), "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and str(target) in err
+    assert target.read_text() == "keep me"
+
+
 def test_help_explains_every_option(capsys):
     with pytest.raises(SystemExit) as info:
         main(["optimize", "--help"])
@@ -242,9 +262,10 @@ def test_resume_with_a_changed_problem_is_refused(tmp_path, monkeypatch, capsys)
     assert (out / "checkpoint.npz").read_bytes() == before
 
 
-def test_sigint_to_a_running_process_then_resume(tmp_path, finished):
-    # A real Ctrl-C: start the command in a subprocess, wait for its first checkpoint,
-    # send SIGINT, then resume in-process.
+@pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
+def test_signal_to_a_running_process_then_resume(tmp_path, signum):
+    # A real Ctrl-C (or a kill from a batch system): start the command in a subprocess,
+    # wait for its first checkpoint, send the signal, then resume in-process.
     text = PROBLEM.replace("max_iterations = 12", "max_iterations = 60").replace(
         "checkpoint_every = 3", "checkpoint_every = 2")
     problem = write_problem(tmp_path, text)
@@ -260,7 +281,7 @@ def test_sigint_to_a_running_process_then_resume(tmp_path, finished):
             assert proc.poll() is None, proc.communicate()
             assert time.monotonic() < deadline
             time.sleep(0.01)
-        proc.send_signal(signal.SIGINT)
+        proc.send_signal(signum)
         _, err = proc.communicate(timeout=120)
     finally:
         if proc.poll() is None:

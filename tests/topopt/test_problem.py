@@ -118,6 +118,8 @@ BAD_FILES = [
      "optimize.penalty"),
     ("unknown method", edit("max_iterations = 3", 'max_iterations = 3\nmethod = "sgd"'),
      "optimize.method"),
+    ("unknown solver", edit("max_iterations = 3", 'max_iterations = 3\nsolver = "fast"'),
+     "optimize.solver"),
     ("3D direction in 2D", lambda t: t + '\n[build]\ndirection = "+z"\n', "build.direction"),
     ("unknown passive state", edit('state = "void"', 'state = "hollow"'), "passive[0].state"),
     ("restraint selects nothing", edit(LEFT, "where = { x = [20.0, 20.0] }"),
