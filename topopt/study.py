@@ -375,8 +375,15 @@ def _run_pool(cases: list[Case], workers: int) -> Iterator[tuple[Case, dict]]:
             except Exception as exc:  # noqa: BLE001 - e.g. a worker killed by the system
                 payload = {"error": f"worker failed: {_one_line(exc)}"}
             yield futures[future], payload
-    finally:
-        pool.shutdown(wait=True, cancel_futures=True)
+    except BaseException:
+        # Interrupted (Ctrl-C, or the caller stopped): end the running cases now rather
+        # than wait for them; their folders have no summary.json, so a rerun redoes them.
+        # ProcessPoolExecutor has no public way to stop busy workers before Python 3.14.
+        for process in list(getattr(pool, "_processes", {}).values()):
+            process.terminate()
+        pool.shutdown(wait=False, cancel_futures=True)
+        raise
+    pool.shutdown(wait=True)
 
 
 def _run_dask(

@@ -37,7 +37,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--dask", action="store_true",
                         help="run on a local Dask cluster of --workers workers (loopback only)")
     parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                        help="run on a running Dask cluster, e.g. tcp://10.0.0.5:8786")
+                        help="run on a running Dask cluster, e.g. tcp://scheduler-host:8786")
     parser.add_argument("--quiet", action="store_true", help="no progress bar or summary lines")
 
 
