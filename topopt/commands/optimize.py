@@ -53,13 +53,20 @@ def save_checkpoint(path: Path, state: dict, digest: str) -> None:
 
 def load_checkpoint(path: Path, digest: str) -> dict:
     """Read a checkpoint written by :func:`save_checkpoint`; check it belongs to the problem."""
+    import zipfile
+
     try:
         with np.load(path, allow_pickle=False) as data:
             saved = {k: data[k] for k in data.files}
-    except (OSError, ValueError) as exc:
-        raise ValueError(f"{path}: not a readable checkpoint ({exc})") from None
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
+        # A truncated or emptied file (e.g. a full disk) must not end in a traceback.
+        raise ValueError(f"{path}: not a readable checkpoint ({exc or type(exc).__name__}); "
+                         "start again with --overwrite") from None
     if str(saved.get("problem_digest")) != digest:
         raise ValueError(f"{path}: the checkpoint belongs to a different problem; "
+                         "start again with --overwrite")
+    if "history_columns" not in saved or "history" not in saved or "design" not in saved:
+        raise ValueError(f"{path}: not a readable checkpoint (entries missing); "
                          "start again with --overwrite")
     columns = [str(c) for c in saved.pop("history_columns")]
     rows = saved.pop("history")
