@@ -262,6 +262,32 @@ def test_resume_with_a_changed_problem_is_refused(tmp_path, monkeypatch, capsys)
     assert (out / "checkpoint.npz").read_bytes() == before
 
 
+@pytest.mark.parametrize("damage", ["truncated", "empty", "zeros"])
+def test_damaged_checkpoint_is_one_line(tmp_path, monkeypatch, capsys, damage):
+    # A checkpoint cut short (full disk, killed copy) is reported, not a traceback.
+    problem = write_problem(tmp_path)
+    out = tmp_path / "out"
+    real = optimize_command.save_checkpoint
+
+    def save_then_interrupt(path, state, digest):
+        real(path, state, digest)
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(optimize_command, "save_checkpoint", save_then_interrupt)
+    assert main(["optimize", str(problem), "--out", str(out), "--quiet"]) == 130
+    monkeypatch.setattr(optimize_command, "save_checkpoint", real)
+    capsys.readouterr()
+    path = out / "checkpoint.npz"
+    data = path.read_bytes()
+    path.write_bytes({"truncated": data[: len(data) // 2], "empty": b"", "zeros": bytes(64)}[damage])
+    before = path.read_bytes()
+    code = main(["optimize", str(problem), "--out", str(out), "--resume", "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1, err
+    assert "checkpoint" in err and "Traceback" not in err
+    assert path.read_bytes() == before
+
+
 @pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
 def test_signal_to_a_running_process_then_resume(tmp_path, signum):
     # A real Ctrl-C (or a kill from a batch system): start the command in a subprocess,
