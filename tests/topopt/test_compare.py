@@ -1,0 +1,314 @@
+"""Tests of `buttress compare` and of optimising with the printability filter on.
+
+Printability is checked by a plain sweep written here, independent of
+filters/printability.py: an element solid at the 0.5 level needs the plate or a solid
+element among the three below it (45 degrees on square elements; Langelaar, SMO
+55:871-883, 2017). The 45 degree rule itself is common practice for metal powder-bed
+fusion (see REFERENCES.md).
+"""
+
+from __future__ import annotations
+
+import copy
+import csv
+import json
+import time
+import tomllib
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from topopt.cli import main
+from topopt.compare import COLUMNS, _check_directions, compare, folder_name
+from topopt.driver import optimize
+from topopt.problem import load_problem, problem_from_dict, with_settings
+
+EXAMPLES = Path(__file__).resolve().parents[2] / "examples"
+DIRECTIONS_2D = ("+x", "-x", "+y", "-y")
+
+
+def unsupported_by_plain_sweep(density: np.ndarray, direction: str) -> int:
+    """Solid elements (rho > 0.5) with neither the plate nor solid among the 3 below."""
+    solid = np.asarray(density) > 0.5
+    axis = "xy".index(direction[1])
+    down = -1 if direction[0] == "+" else 1  # index step towards the plate
+    count = 0
+    for i, j in zip(*np.nonzero(solid), strict=True):
+        pos = [i, j]
+        below = pos[axis] + down
+        if below < 0 or below >= solid.shape[axis]:
+            continue  # on the plate
+        found = False
+        for side in (-1, 0, 1):
+            q = list(pos)
+            q[axis] = below
+            q[1 - axis] += side
+            if 0 <= q[1 - axis] < solid.shape[1 - axis] and solid[q[0], q[1]]:
+                found = True
+                break
+        count += not found
+    return count
+
+
+def test_plain_sweep_can_fail():
+    d = np.zeros((5, 4))
+    d[2, 0] = d[2, 2] = 1.0  # x = 2: one element on the y = 0 plate, one above a gap
+    assert unsupported_by_plain_sweep(d, "+y") == 1
+    assert unsupported_by_plain_sweep(d, "-y") == 2
+    assert unsupported_by_plain_sweep(d, "+x") == 2
+    d[1:4, 1] = 1.0  # three elements at y = 1, each resting on (2, 0), carry it
+    assert unsupported_by_plain_sweep(d, "+y") == 0
+
+
+def _table(path: Path) -> dict:
+    return tomllib.loads(path.read_text())
+
+
+def _coarse_bracket(max_iterations: int = 80):
+    # The bundled bracket at half resolution (element 1 mm instead of 0.5 mm); the
+    # filter radius grows with the element so the filter still spans neighbours.
+    data = _table(EXAMPLES / "wall-bracket-2d.toml")
+    data["domain"]["shape"] = [60, 30]
+    data["domain"]["element_size"] = 1.0
+    data["optimize"]["filter_radius"] = 1.5
+    data["optimize"]["max_iterations"] = max_iterations
+    return problem_from_dict(data, source="coarse wall bracket")
+
+
+def _small_mbb(max_iterations: int = 25):
+    data = _table(EXAMPLES / "mbb-beam.toml")
+    data["domain"]["shape"] = [30, 10]
+    data["restraints"][1]["where"]["x"] = [30.0, 30.0]
+    data["loads"][0]["where"]["y"] = [10.0, 10.0]
+    data["optimize"]["max_iterations"] = max_iterations
+    return problem_from_dict(data, source="small MBB beam")
+
+
+@pytest.fixture(scope="module")
+def mbb_comparison(tmp_path_factory):
+    out = tmp_path_factory.mktemp("mbb") / "cmp"
+    t0 = time.perf_counter()
+    rows = compare(load_problem(EXAMPLES / "mbb-beam.toml"), out_dir=out, workers=2)
+    return out, rows, time.perf_counter() - t0
+
+
+@pytest.fixture(scope="module")
+def bracket_comparison(tmp_path_factory):
+    out = tmp_path_factory.mktemp("bracket") / "cmp"
+    rows = compare(_coarse_bracket(), out_dir=out, workers=2)
+    return out, rows
+
+
+def _density(folder: Path) -> np.ndarray:
+    with np.load(folder / "result.npz", allow_pickle=False) as data:
+        return np.array(data["density"])
+
+
+@pytest.mark.parametrize("which", ["mbb_comparison", "bracket_comparison"])
+def test_filter_on_leaves_no_unsupported_element(which, request):
+    out, rows = request.getfixturevalue(which)[:2]
+    assert [r["direction"] for r in rows] == ["none", *DIRECTIONS_2D]
+    for r in rows[1:]:
+        density = _density(out / r["results"])
+        assert unsupported_by_plain_sweep(density, r["direction"]) == 0, r["direction"]
+        assert r["unsupported_elements"] == 0
+        assert r["overhang_area"] == 0.0
+        # a self-supporting design is a real structure, not a faded one
+        assert r["volume_fraction"] > 0.9 * rows[0]["volume_fraction"]
+
+
+@pytest.mark.parametrize("which", ["mbb_comparison", "bracket_comparison"])
+def test_filter_off_design_has_unsupported_elements(which, request):
+    # the same check must be able to fail: the free design needs support in every direction
+    out, rows = request.getfixturevalue(which)[:2]
+    free = _density(out / "none")
+    for r in rows[1:]:
+        count = unsupported_by_plain_sweep(free, r["direction"])
+        assert count > 0, r["direction"]
+        assert r["free_design_unsupported_elements"] == count
+
+
+def test_mbb_compliance_increase_within_published_range(mbb_comparison):
+    # Langelaar, SMO 55:871-883, 2017 reports that the self-supporting MBB designs cost
+    # from a few percent up to some tens of percent in compliance, depending on the
+    # side the plate is on [from memory: we could not read the paper here, so the band
+    # is wide]. Both designs are local optima, so a small decrease is possible too.
+    _, rows, _ = mbb_comparison
+    increases = [r["compliance_increase_percent"] for r in rows[1:]]
+    assert all(-10.0 <= v <= 40.0 for v in increases), increases
+    assert max(increases) > 1.0  # the constraint costs something in some direction
+    # the free design matches the MBB benchmark band (about 2e2; Andreassen et al. 2011,
+    # from memory)
+    assert 180.0 <= rows[0]["compliance"] <= 260.0
+
+
+def test_csv_agrees_with_results_folders(mbb_comparison):
+    out, rows, _ = mbb_comparison
+    with open(out / "comparison.csv", newline="") as handle:
+        table = list(csv.DictReader(handle))
+    assert list(table[0]) == COLUMNS
+    assert [t["direction"] for t in table] == [r["direction"] for r in rows]
+    free = json.loads((out / "none" / "summary.json").read_text())
+    for t in table:
+        summary = json.loads((out / t["results"] / "summary.json").read_text())
+        assert summary["build_direction"] == t["direction"]
+        for key in ("compliance", "volume_fraction", "grey_level", "elapsed_s"):
+            assert float(t[key]) == pytest.approx(summary[key], rel=1e-12), key
+        assert int(t["iterations"]) == summary["iterations"]
+        expected = 100 * (summary["compliance"] - free["compliance"]) / free["compliance"]
+        assert float(t["compliance_increase_percent"]) == pytest.approx(expected, abs=1e-9)
+        if t["direction"] == "none":
+            assert t["unsupported_elements"] == "" and t["overhang_area"] == ""
+        else:
+            assert int(t["unsupported_elements"]) == summary["unsupported_elements"]
+            assert float(t["overhang_area"]) == summary["overhang_area"]
+    png = (out / "comparison.png").read_bytes()
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_compare_row_matches_an_individual_run(tmp_path):
+    # compare() with one worker runs in this process: the same numbers as optimize()
+    problem = _small_mbb()
+    rows = compare(problem, directions="+y", out_dir=tmp_path / "cmp", workers=1)
+    alone = optimize(with_settings(problem, {"build.direction": "+y"}))
+    assert rows[1]["compliance"] == pytest.approx(alone.compliance, rel=1e-9)
+    assert rows[1]["iterations"] == alone.iterations
+    free = optimize(problem)
+    assert rows[0]["compliance"] == pytest.approx(free.compliance, rel=1e-9)
+    np.testing.assert_allclose(_density(tmp_path / "cmp" / "plus-y"), alone.density, atol=1e-9)
+    # the results folder's problem.toml records the direction of that run
+    saved = tomllib.loads((tmp_path / "cmp" / "plus-y" / "problem.toml").read_text())
+    assert saved["build"]["direction"] == "+y"
+
+
+def test_pool_and_inline_runs_agree(mbb_comparison):
+    # the +x run made in a worker process (one BLAS thread) against one made here
+    out, rows, _ = mbb_comparison
+    problem = with_settings(load_problem(EXAMPLES / "mbb-beam.toml"), {"build.direction": "+x"})
+    alone = optimize(problem)
+    row = next(r for r in rows if r["direction"] == "+x")
+    assert row["compliance"] == pytest.approx(alone.compliance, rel=1e-6)
+
+
+@pytest.mark.parametrize(
+    "kwargs,match",
+    [
+        ({"directions": ["+z"]}, "directions"),
+        ({"directions": "+x,+x"}, "once"),
+        ({"directions": ["none"]}, "directions"),
+        ({"directions": []}, "at least one"),
+        ({"workers": 0}, "workers"),
+        ({"workers": 1.5}, "workers"),
+    ],
+)
+def test_compare_rejects_bad_arguments(tmp_path, kwargs, match):
+    with pytest.raises(ValueError, match=match):
+        compare(_small_mbb(max_iterations=1), out_dir=tmp_path / "cmp", **kwargs)
+    assert not (tmp_path / "cmp").exists()
+
+
+def test_3d_comparison_and_default_directions(tmp_path):
+    data = {
+        "domain": {"shape": [4, 3, 3], "element_size": 1.0},
+        "material": {"youngs_modulus": 1.0, "poisson_ratio": 0.3},
+        "restraints": [{"where": {"x": [0.0, 0.0]}, "fix": ["x", "y", "z"]}],
+        "loads": [{"where": {"x": [4.0, 4.0]}, "force": [0.0, 0.0, -1.0]}],
+        "optimize": {"volume_fraction": 0.5, "filter_radius": 1.5, "max_iterations": 2},
+    }
+    problem = problem_from_dict(copy.deepcopy(data), source="tiny box")
+    assert _check_directions(None, 3) == ["+x", "-x", "+y", "-y", "+z", "-z"]
+    assert _check_directions(None, 2) == list(DIRECTIONS_2D)
+    rows = compare(problem, directions=["-z"], out_dir=tmp_path / "cmp", workers=1)
+    assert [r["direction"] for r in rows] == ["none", "-z"]
+    assert (tmp_path / "cmp" / "minus-z" / "summary.json").exists()
+    assert (tmp_path / "cmp" / "comparison.png").stat().st_size > 0
+
+
+def test_folder_names():
+    assert [folder_name(d) for d in ("none", "+x", "-z")] == ["none", "plus-x", "minus-z"]
+
+
+def _write_small(tmp_path: Path, iterations: int = 3) -> Path:
+    text = (EXAMPLES / "mbb-beam.toml").read_text()
+    text = text.replace("shape = [60, 20]", "shape = [30, 10]")
+    text = text.replace("x = [60.0, 60.0]", "x = [30.0, 30.0]")
+    text = text.replace("y = [20.0, 20.0]", "y = [10.0, 10.0]")
+    text = text.replace("max_iterations = 300", f"max_iterations = {iterations}")
+    path = tmp_path / "small.toml"
+    path.write_text(text)
+    return path
+
+
+def test_command_writes_comparison(tmp_path, capsys):
+    problem = _write_small(tmp_path)
+    out = tmp_path / "cmp"
+    code = main(
+        ["compare", str(problem), "--out", str(out), "--directions", "+y,-x", "--workers", "1"]
+    )
+    assert code == 0
+    printed = capsys.readouterr().out
+    assert "comparison.csv" in printed and "+y" in printed
+    for name in (
+        "comparison.csv",
+        "comparison.png",
+        "none/summary.json",
+        "plus-y/summary.json",
+        "minus-x/result.npz",
+    ):
+        assert (out / name).exists(), name
+    # a second run must not replace the first: one line, exit code 2
+    before = (out / "comparison.csv").read_bytes()
+    code = main(["compare", str(problem), "--out", str(out), "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "holds results" in err
+    assert (out / "comparison.csv").read_bytes() == before
+    code = main(
+        [
+            "compare",
+            str(problem),
+            "--out",
+            str(out),
+            "--directions=-y",  # a list starting with "-" needs the "=" form
+            "--workers",
+            "1",
+            "--quiet",
+            "--overwrite",
+        ]
+    )
+    assert code == 0 and "-y" in (out / "comparison.csv").read_text()
+
+
+def test_command_bad_input_is_one_line(tmp_path, capsys):
+    problem = _write_small(tmp_path)
+    out = tmp_path / "cmp"
+    code = main(["compare", str(problem), "--out", str(out), "--directions", "+x,+z"])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "+z" in err
+    assert not out.exists()
+    code = main(["compare", str(tmp_path / "missing.toml"), "--out", str(out)])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    with pytest.raises(SystemExit) as exc:
+        main(["compare", str(problem), "--out", str(out), "--workers", "0"])
+    assert exc.value.code == 2
+
+
+@pytest.mark.slow
+def test_full_bracket_comparison_on_two_cores(tmp_path):
+    # the bundled bracket at full size, every direction, two workers; the issue asks for
+    # under two minutes on two cores (a shared machine can be slower: measured, not
+    # guaranteed)
+    t0 = time.perf_counter()
+    rows = compare(
+        load_problem(EXAMPLES / "wall-bracket-2d.toml"), out_dir=tmp_path / "cmp", workers=2
+    )
+    elapsed = time.perf_counter() - t0
+    free = _density(tmp_path / "cmp" / "none")
+    for r in rows[1:]:
+        assert (
+            unsupported_by_plain_sweep(_density(tmp_path / "cmp" / r["results"]), r["direction"])
+            == 0
+        )
+        assert unsupported_by_plain_sweep(free, r["direction"]) > 0
+    assert elapsed < 120.0, elapsed
