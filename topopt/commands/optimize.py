@@ -56,7 +56,8 @@ def load_checkpoint(path: Path, digest: str) -> dict:
     import zipfile
 
     try:
-        with np.load(path, allow_pickle=False) as data:
+        # Our own handle: np.load leaks the one it opens when the zip is damaged.
+        with open(path, "rb") as handle, np.load(handle, allow_pickle=False) as data:
             saved = {k: data[k] for k in data.files}
     except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
         # A truncated or emptied file (e.g. a full disk) must not end in a traceback.
