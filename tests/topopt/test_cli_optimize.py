@@ -279,7 +279,8 @@ def test_damaged_checkpoint_is_one_line(tmp_path, monkeypatch, capsys, damage):
     capsys.readouterr()
     path = out / "checkpoint.npz"
     data = path.read_bytes()
-    path.write_bytes({"truncated": data[: len(data) // 2], "empty": b"", "zeros": bytes(64)}[damage])
+    damaged = {"truncated": data[: len(data) // 2], "empty": b"", "zeros": bytes(64)}
+    path.write_bytes(damaged[damage])
     before = path.read_bytes()
     code = main(["optimize", str(problem), "--out", str(out), "--resume", "--quiet"])
     err = capsys.readouterr().err
