@@ -531,7 +531,8 @@ def run(
     ordered = _ordered(rows)
     write_table(ordered, st.keys, out / "table.csv")
     directions = {c.case_id: (c.problem.build.direction if c.problem else "") for c in st.cases}
-    plot_study(ordered, st.keys, out / "study.png", title=st.name, directions=directions)
+    plot_study(ordered, st.keys, out / "study.png", title=st.name, directions=directions,
+               mode=st.mode)
     return ordered
 
 
@@ -652,11 +653,12 @@ def _is_number(v: Any) -> bool:
 
 
 def plot_study(rows: list[dict], keys: tuple[str, ...], path: str | Path, *, title: str = "",
-               directions: Mapping[str, str] | None = None) -> None:
+               directions: Mapping[str, str] | None = None, mode: str = "product") -> None:
     """Draw ``study.png``: compliance against each varied setting, and the trade-off.
 
     One panel per varied key (other than the build direction) with one line per build
-    direction (and per combination of the other varied values); a last panel plots
+    direction (and, in ``"product"`` mode, per combination of the other varied values:
+    in ``"zip"`` mode they change together along the line); a last panel plots
     compliance against support volume and rings the non-dominated cases.
     """
     import matplotlib
@@ -679,7 +681,8 @@ def plot_study(rows: list[dict], keys: tuple[str, ...], path: str | Path, *, tit
     all_dirs = list(dict.fromkeys(directions.get(r["case"], "") for r in rows))
     colours = {d: plt.get_cmap("tab10")(i % 10) for i, d in enumerate(all_dirs)}
     for ax, key in zip(flat, x_keys, strict=False):
-        _plot_against(ax, rows, ok, key, keys, directions, colours)
+        others = [k for k in keys if k not in (key, "build.direction")] if mode == "product" else []
+        _plot_against(ax, rows, ok, key, others, directions, colours)
     _plot_tradeoff(flat[len(x_keys)], ok, keys, directions, colours)
     for ax in flat[n_panels:]:
         ax.set_visible(False)
@@ -693,14 +696,13 @@ def plot_study(rows: list[dict], keys: tuple[str, ...], path: str | Path, *, tit
     plt.close(fig)
 
 
-def _plot_against(ax, rows, ok, key, keys, directions, colours) -> None:
+def _plot_against(ax, rows, ok, key, others, directions, colours) -> None:
     values = [r[key] for r in rows]
     numeric = all(_is_number(v) for v in values)
     if numeric:
         position = {_display(v): float(v) for v in values}
     else:  # categories in study order
         position = {d: i for i, d in enumerate(dict.fromkeys(_display(v) for v in values))}
-    others = [k for k in keys if k not in (key, "build.direction")]
     groups: dict[tuple, list[dict]] = {}
     for r in ok:
         groups.setdefault((directions.get(r["case"], ""),

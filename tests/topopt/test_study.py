@@ -167,6 +167,18 @@ def test_local_dask_cluster_gives_the_same_table_as_the_process_pool(tmp_path):
     assert [r["case"] for r in pool_csv] == [r["case"] for r in dask_csv]
 
 
+@pytest.mark.slow
+def test_cli_dask_flag_starts_a_local_cluster_of_worker_processes(tmp_path):
+    # Worker processes take several seconds to start on 2 cores, hence slow.
+    pytest.importorskip("distributed")
+    path = write_study(tmp_path, {"optimize.volume_fraction": [0.35, 0.5]})
+    assert main(["sweep", str(path), "--out", str(tmp_path / "dask"), "--dask", "--workers", "2",
+                 "--quiet"]) == 0
+    pool_rows = study.run(path, out_dir=tmp_path / "pool", workers=2)
+    dask_rows = study.run(path, out_dir=tmp_path / "dask", workers=2)  # all reused
+    _assert_same_rows(pool_rows, dask_rows)
+
+
 def test_invalid_value_fails_alone_with_its_error(tmp_path):
     vary = {"optimize.volume_fraction": [0.4, 1.5, 0.5]}
     path = write_study(tmp_path, vary)
