@@ -522,7 +522,8 @@ def _check_overhang_angle(r: _Reader, angle: float) -> None:
 def _restraints_stop_rigid_motion(grid: Grid, restraints) -> bool:
     """Whether the fixed dofs suppress every rigid-body mode (else K is singular)."""
     d = grid.dim
-    coords = grid.node_coordinates() - 0.5 * np.array(grid.size)
+    # Lattice units (node indices): the test is scale-free and cannot overflow.
+    coords = np.indices(grid.node_shape).reshape(d, -1).T - 0.5 * np.array(grid.shape)
     pairs = [(0, 1)] if d == 2 else [(0, 1), (1, 2), (0, 2)]
     rows = []
     for rr in restraints:
@@ -534,7 +535,7 @@ def _restraints_stop_rigid_motion(grid: Grid, restraints) -> bool:
             for i, j in pairs:
                 modes.append(-x[:, j] if a == i else x[:, i] if a == j else np.zeros(len(x)))
             rows.append(np.column_stack(modes))
-    block = np.concatenate(rows) / np.array([1.0] * d + [max(grid.size)] * len(pairs))
+    block = np.concatenate(rows) / np.array([1.0] * d + [max(grid.shape)] * len(pairs))
     return np.linalg.matrix_rank(block, tol=1e-9 * max(1.0, np.abs(block).max())) == block.shape[1]
 
 
