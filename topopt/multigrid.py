@@ -201,67 +201,66 @@ def _jacobi_spectral_radius(A, inv_diag, *, start=None, iterations: int = 12):
     return lam, x
 
 
-def _mask_fixed(mats: np.ndarray, elements: np.ndarray, local_fixed: np.ndarray) -> None:
-    """Zero the rows and columns of fixed dofs in the given element matrices (in place)."""
-    keep = ~local_fixed  # (n_touched, nd)
-    mats[elements] *= keep[:, :, None] * keep[:, None, :]
+class _Coarsening:
+    """What the element-wise Galerkin product of one grid needs, computed once."""
 
+    def __init__(self, shape: tuple[int, ...], free_dofs: np.ndarray):
+        grid = Grid(shape, 1.0)
+        self.shape = shape
+        self.n_coarse = int(np.prod(coarse_shape(shape)))
+        self.children = [(_child_elements(shape, c), Q)
+                         for c, Q in _child_interpolations(grid.dim, coarsen_factors(shape))]
+        fixed = np.ones(grid.n_dofs, dtype=bool)
+        fixed[free_dofs] = False
+        # Elements with a fixed dof, and which of their local dofs are fixed.
+        local_fixed = fixed[grid.element_dofs]
+        self.touched = np.flatnonzero(local_fixed.any(axis=1))
+        self.keep = ~local_fixed[self.touched]
+        # Child matrices of the first coarsening: M_c = Q_c^T K0 Q_c (set per K0).
+        self._K0 = None
+        self._M = None
 
-def _coarse_element_matrices(shape, dim, source, scale, fixed_dofs_mask):
-    """Galerkin element matrices of the next coarser grid.
-
-    ``source`` is either one element matrix (1, nd, nd) scaled by ``scale`` per element
-    (the finest grid) or one matrix per element with ``scale`` None. Rows and columns
-    of fixed dofs of this grid are masked before the product (see module docstring).
-    """
-    grid = Grid(shape, 1.0)
-    factors = coarsen_factors(shape)
-    n_coarse = int(np.prod(coarse_shape(shape)))
-    nd = dim * 2**dim
-    edofs = grid.element_dofs
-    local_fixed = fixed_dofs_mask[edofs]
-    touched = np.flatnonzero(local_fixed.any(axis=1))
-    out = np.zeros((n_coarse, nd, nd))
-    children = _child_interpolations(dim, factors)
-    if scale is not None:
-        K0 = source[0]
-        for c, Q in children:
-            child = _child_elements(shape, c)
+    def first(self, K0: np.ndarray, scale: np.ndarray) -> np.ndarray:
+        """Coarse element matrices for fine element matrices scale[e] * K0."""
+        nd = K0.shape[0]
+        if self._K0 is None or not np.array_equal(self._K0, K0):
+            self._K0 = K0.copy()
+            self._M = np.stack([(Q.T @ K0 @ Q).ravel() for _, Q in self.children])
+        S = np.zeros((self.n_coarse, len(self.children)))
+        for c, (child, _) in enumerate(self.children):
             present = child >= 0
-            s = np.zeros(n_coarse)
-            s[present] = scale[child[present]]
-            out += s[:, None, None] * (Q.T @ K0 @ Q)[None]
-        if touched.size:
+            S[present, c] = scale[child[present]]
+        out = (S @ self._M).reshape(self.n_coarse, nd, nd)
+        if self.touched.size:
             # Elements with a fixed dof: replace s K0 by its masked version.
-            mats = scale[touched][:, None, None] * K0[None]
-            masked = mats.copy()
-            _mask_fixed(masked, slice(None), local_fixed[touched])
-            delta = masked - mats
-            _add_to_parents(out, shape, touched, delta, children)
+            mats = scale[self.touched][:, None, None] * K0[None]
+            delta = mats * (self.keep[:, :, None] * self.keep[:, None, :]) - mats
+            self._add_to_parents(out, self.touched, delta)
         return out
-    mats = source
-    if touched.size:
-        mats = mats.copy()
-        _mask_fixed(mats, touched, local_fixed[touched])
-    for c, Q in children:
-        child = _child_elements(shape, c)
-        present = np.flatnonzero(child >= 0)
-        out[present] += np.matmul(np.matmul(Q.T[None], mats[child[present]]), Q[None])
-    return out
 
+    def next(self, mats: np.ndarray) -> np.ndarray:
+        """Coarse element matrices for one fine element matrix per element."""
+        if self.touched.size:
+            mats = mats.copy()
+            mats[self.touched] *= self.keep[:, :, None] * self.keep[:, None, :]
+        out = np.zeros((self.n_coarse,) + mats.shape[1:])
+        for child, Q in self.children:
+            present = np.flatnonzero(child >= 0)
+            out[present] += np.matmul(np.matmul(Q.T[None], mats[child[present]]), Q[None])
+        return out
 
-def _add_to_parents(out, shape, elements, matrices, children):
-    """Add Q_c^T M Q_c of the given fine elements to their coarse parents."""
-    dim = len(shape)
-    factors = np.array(coarsen_factors(shape))
-    index = np.array(np.unravel_index(elements, shape))  # (dim, n)
-    parent = np.ravel_multi_index(tuple(index // factors[:, None]), coarse_shape(shape))
-    position = index % factors[:, None]
-    for c, Q in children:
-        hit = np.all(position == np.array(c)[:, None], axis=0)
-        if hit.any():
-            np.add.at(out, parent[hit], np.matmul(np.matmul(Q.T[None], matrices[hit]), Q[None]))
-    del dim
+    def _add_to_parents(self, out, elements, matrices):
+        """Add Q_c^T M Q_c of the given fine elements to their coarse parents."""
+        shape = self.shape
+        factors = np.array(coarsen_factors(shape))
+        index = np.array(np.unravel_index(elements, shape))  # (dim, n)
+        parent = np.ravel_multi_index(tuple(index // factors[:, None]), coarse_shape(shape))
+        position = np.ravel_multi_index(tuple(index % factors[:, None]), tuple(factors))
+        for c, (_, Q) in enumerate(self.children):
+            hit = position == c
+            if hit.any():
+                np.add.at(out, parent[hit],
+                          np.matmul(np.matmul(Q.T[None], matrices[hit]), Q[None]))
 
 
 class MultigridHierarchy:
@@ -286,6 +285,8 @@ class MultigridHierarchy:
         self.shapes = [grid.shape]
         self.free = [np.asarray(free_dofs, dtype=np.int64)]
         self.transfers: list[sparse.csr_matrix] = []
+        self.restrictions: list[sparse.csr_matrix] = []
+        self.coarsenings: list[_Coarsening] = []
         self.patterns: list[StructuredPattern | None] = [None]
         shape = grid.shape
         while (len(self.shapes) < max_levels and self.free[-1].size > coarse_dofs
@@ -293,6 +294,8 @@ class MultigridHierarchy:
             P = prolongation(shape)[self.free[-1]]
             cfree = _coarse_free_dofs(shape, self.free[-1], P)
             self.transfers.append(P[:, cfree].tocsr())
+            self.restrictions.append(self.transfers[-1].T.tocsr())
+            self.coarsenings.append(_Coarsening(shape, self.free[-1]))
             shape = coarse_shape(shape)
             self.shapes.append(shape)
             self.free.append(cfree)
@@ -307,18 +310,19 @@ class MultigridHierarchy:
 
     def update(self, K: sparse.spmatrix, *, element_matrix=None, moduli=None) -> None:
         """Build the operators of every level for the finest matrix ``K``."""
-        K = sparse.csr_matrix(K)
+        K = _symmetric_csr(K) if getattr(K, "format", "") == "csc" else sparse.csr_matrix(K)
         operators = [K]
         elementwise = element_matrix is not None and moduli is not None
         source = np.asarray(element_matrix, dtype=float)[None] if elementwise else None
         scale = np.asarray(moduli, dtype=float).ravel() if elementwise else None
         for level, P in enumerate(self.transfers):
-            shape = self.shapes[level]
             if elementwise:
-                fixed = np.ones(Grid(shape, 1.0).n_dofs, dtype=bool)
-                fixed[self.free[level]] = False
-                source = _coarse_element_matrices(shape, self.dim, source, scale, fixed)
-                scale = None
+                coarsening = self.coarsenings[level]
+                if scale is not None:
+                    source = coarsening.first(source[0], scale)
+                    scale = None
+                else:
+                    source = coarsening.next(source)
                 pattern = self.patterns[level + 1]
                 A = pattern.matrix(source, np.ones(source.shape[0]))
                 operators.append(_symmetric_csr(A))
@@ -332,7 +336,7 @@ class MultigridHierarchy:
             if level < len(operators) - 1:
                 lev = _Level(A, previous[level].eigenvector if previous else None)
                 lev.P = self.transfers[level]
-                lev.R = lev.P.T.tocsr()
+                lev.R = self.restrictions[level]
                 self.levels.append(lev)
         self._coarse_factor = _factorise(operators[-1])
 
