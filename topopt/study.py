@@ -27,6 +27,15 @@ hash of the case's complete problem table, so the same problem always lands in t
 folder. A case whose ``summary.json`` exists is not run again: rerunning a study after a
 crash finishes only the missing cases, and adding values to a study reuses the cases
 already done. Cases that failed are tried again on the next run.
+
+``OUT/table.csv`` has one row per case in study order: ``case``, one column per varied
+key, ``status`` (``ok`` / ``failed``), ``error``, ``compliance``, ``volume_fraction``,
+``unsupported_elements`` (from the case summary, where the printability filter ran),
+``iterations``, ``converged``, ``elapsed_s``, and the print-preparation figures
+``support_volume``, ``build_time_h`` and ``assessed_direction`` (blank when
+:mod:`topopt.build` is not available). ``OUT/study.png`` plots compliance against each
+varied setting and compliance against support volume with the non-dominated cases
+ringed.
 """
 
 from __future__ import annotations
@@ -497,7 +506,9 @@ def run(
 
     n_workers = workers if workers is not None else (os.cpu_count() or 1)
     n_workers = max(1, min(n_workers, len(pending) or 1))
-    if scheduler is not None or dask:
+    if not pending:  # nothing to run: start no pool or cluster
+        finished = iter(())
+    elif scheduler is not None or dask:
         finished = _run_dask(pending, scheduler=scheduler, workers=n_workers)
     elif n_workers == 1:
         finished = _run_inline(pending)
@@ -514,8 +525,12 @@ def run(
         for case, payload in finished:
             folder = cases_dir / case.case_id
             if "result" in payload:
-                write_results(payload["result"], case.problem, folder)
-                rows[case.index] = case_row(st, case, folder)
+                try:
+                    write_results(payload["result"], case.problem, folder)
+                    rows[case.index] = case_row(st, case, folder)
+                except Exception as exc:  # noqa: BLE001 - e.g. a mesh writer refusing a design
+                    rows[case.index] = _failed_row(
+                        st, case, f"writing the results failed: {_one_line(exc)}")
             else:
                 rows[case.index] = _failed_row(st, case, payload["error"])
             write_table(_ordered(rows), st.keys, out / "table.csv")
