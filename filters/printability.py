@@ -21,6 +21,14 @@ than through ``smin(x, 1)``; both say "the plate supports the first layer", ours
 smoothing error there. Elements of the support region that lie outside the domain count
 as void (zero); they add nothing to the P-sum, so ``Ns`` is the same for every element.
 
+Smoothing error (measured and computed for the defaults, 0/1 inputs): printed elements
+come out within 0.005 of 1 (smax of equal ones is ``Ns**(1/Q) > 1``, so values slightly
+above 1 occur); removed elements come out at most about 0.06, the fixed point of
+``a -> smin(1, Ns**(1/Q) a**(P/Q))`` reached along tall unsupported columns (0.059 for
+Ns = 3, 0.032 for Ns = 5, 0.017 for Ns = 13). At the 0.5 level the output equals the
+exact printable part. Grey inputs are another matter: an element just above 0.5 can sit
+on supports just below 0.5 (smin exceeds the smaller input by up to sqrt(epsilon)/2).
+
 Support region and the overhang angle
 -------------------------------------
 Angles are measured from the build plate along a grid axis; a down-facing surface at
