@@ -429,6 +429,17 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         if not touches_material[load.nodes].all():
             raise r.fail(f"loads[{i}].where", "selects nodes surrounded by passive void; "
                          "the load would act on nothing (move it onto material)")
+    # A load that does no work leaves compliance at zero: nothing to optimise.
+    restrained = np.zeros(grid.n_dofs, dtype=bool)
+    for rr in restraints:
+        for axis in rr.fix:
+            restrained[rr.nodes * dim + AXES.index(axis)] = True
+    for i, load in enumerate(loads):
+        if not any(load.force):
+            raise r.fail(f"loads[{i}].force", "expected a non-zero force")
+        if all(restrained[load.nodes * dim + a].all() for a in range(dim) if load.force[a]):
+            raise r.fail(f"loads[{i}].where", "acts only on restrained nodes in the direction of "
+                         "the force; the load would do no work")
 
     opt = r.table(data, "optimize", OPTIMIZE_KEYS)
     vf = r.number(opt, "volume_fraction", "optimize.volume_fraction", low=0.0, high=1.0,
