@@ -134,6 +134,8 @@ BAD_FILES = [
     ("load with 3 components", edit("force = [0.0, -1.0]", "force = [0.0, -1.0, 0.0]"),
      "loads[0].force"),
     ("load with 1 component", edit("force = [0.0, -1.0]", "force = [1.0]"), "loads[0].force"),
+    ("zero force", edit("force = [0.0, -1.0]", "force = [0.0, 0.0]"), "loads[0].force"),
+    ("load on clamped nodes only", edit(TIP, CORNER), "loads[0].where"),
     ("no restraint", edit(RESTRAINT, ""), "restraints"),
     ("restraint in x only", edit('fix = ["x", "y"]', 'fix = ["x"]'), "restraints"),
     # One pinned node (or a pin plus a roller along the line to it) lets the part turn.
