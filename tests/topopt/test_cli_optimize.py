@@ -201,27 +201,38 @@ def test_help_explains_every_option(capsys):
     assert "optimize" in capsys.readouterr().out
 
 
-def test_resume_after_interrupt_gives_the_same_result(tmp_path, finished, monkeypatch, capsys):
-    # Interrupt deterministically: the checkpoint at iteration 6 raises KeyboardInterrupt
-    # right after writing the file, as Ctrl-C between two iterations would.
-    problem = write_problem(tmp_path)
-    out = tmp_path / "out"
+def run_interrupted(folder: Path, monkeypatch, capsys, *, at_iteration: int):
+    """Run PROBLEM; the checkpoint at ``at_iteration`` raises KeyboardInterrupt right
+    after writing its file, as Ctrl-C between two iterations would (deterministic).
+
+    Returns the problem path, the results folder and the iterations checkpointed.
+    """
+    problem = write_problem(folder)
+    out = folder / "out"
     real_save = optimize_command.save_checkpoint
     calls = []
 
     def save_then_interrupt(path, state, digest):
         real_save(path, state, digest)
         calls.append(state["iteration"])
-        if state["iteration"] == 6 and calls.count(6) == 1:
+        if state["iteration"] == at_iteration and calls.count(at_iteration) == 1:
             raise KeyboardInterrupt
 
     monkeypatch.setattr(optimize_command, "save_checkpoint", save_then_interrupt)
-    code = main(["optimize", str(problem), "--out", str(out), "--quiet"])
+    try:
+        code = main(["optimize", str(problem), "--out", str(out), "--quiet"])
+    finally:
+        monkeypatch.setattr(optimize_command, "save_checkpoint", real_save)
     err = capsys.readouterr().err
     assert code == 130 and "--resume" in err
-    assert calls == [3, 6, 6]
     assert (out / "checkpoint.npz").exists() and not (out / "summary.json").exists()
-    monkeypatch.setattr(optimize_command, "save_checkpoint", real_save)
+    return problem, out, calls
+
+
+def test_resume_after_interrupt_gives_the_same_result(tmp_path, finished, monkeypatch, capsys):
+    problem, out, calls = run_interrupted(tmp_path, monkeypatch, capsys, at_iteration=6)
+    # Checkpoints every 3 iterations, then once more on the interrupt.
+    assert calls == [3, 6, 6]
     # Without --resume the interrupted run is not thrown away.
     assert main(["optimize", str(problem), "--out", str(out), "--quiet"]) == 2
     capsys.readouterr()
@@ -241,18 +252,7 @@ def assert_same_run(resumed: dict, reference: dict) -> None:
 
 
 def test_resume_with_a_changed_problem_is_refused(tmp_path, monkeypatch, capsys):
-    problem = write_problem(tmp_path)
-    out = tmp_path / "out"
-
-    def save_then_interrupt(path, state, digest):
-        real(path, state, digest)
-        raise KeyboardInterrupt
-
-    real = optimize_command.save_checkpoint
-    monkeypatch.setattr(optimize_command, "save_checkpoint", save_then_interrupt)
-    assert main(["optimize", str(problem), "--out", str(out), "--quiet"]) == 130
-    monkeypatch.setattr(optimize_command, "save_checkpoint", real)
-    capsys.readouterr()
+    _, out, _ = run_interrupted(tmp_path, monkeypatch, capsys, at_iteration=3)
     before = (out / "checkpoint.npz").read_bytes()
     changed = write_problem(tmp_path, PROBLEM.replace("volume_fraction = 0.4",
                                                       "volume_fraction = 0.3"))
@@ -265,18 +265,7 @@ def test_resume_with_a_changed_problem_is_refused(tmp_path, monkeypatch, capsys)
 @pytest.mark.parametrize("damage", ["truncated", "empty", "zeros"])
 def test_damaged_checkpoint_is_one_line(tmp_path, monkeypatch, capsys, damage):
     # A checkpoint cut short (full disk, killed copy) is reported, not a traceback.
-    problem = write_problem(tmp_path)
-    out = tmp_path / "out"
-    real = optimize_command.save_checkpoint
-
-    def save_then_interrupt(path, state, digest):
-        real(path, state, digest)
-        raise KeyboardInterrupt
-
-    monkeypatch.setattr(optimize_command, "save_checkpoint", save_then_interrupt)
-    assert main(["optimize", str(problem), "--out", str(out), "--quiet"]) == 130
-    monkeypatch.setattr(optimize_command, "save_checkpoint", real)
-    capsys.readouterr()
+    problem, out, _ = run_interrupted(tmp_path, monkeypatch, capsys, at_iteration=3)
     path = out / "checkpoint.npz"
     data = path.read_bytes()
     damaged = {"truncated": data[: len(data) // 2], "empty": b"", "zeros": bytes(64)}
