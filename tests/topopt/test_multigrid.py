@@ -174,3 +174,20 @@ def test_solution_solves_the_system():
     r = f - K @ u
     assert np.linalg.norm(r) <= 1e-3 * np.linalg.norm(f)
     assert isinstance(K, sparse.csc_matrix)
+
+
+@pytest.mark.slow
+def test_bracket_3d_optimisation_same_with_multigrid_and_direct():
+    # Issue check: the bundled 3D bracket optimised with either solver ends within 0.5 %
+    # in compliance (reference: the same run with the direct solver).
+    from pathlib import Path
+
+    from topopt import load_problem, optimize
+
+    path = Path(__file__).resolve().parents[2] / "examples" / "bracket-3d.toml"
+    problem = load_problem(path)
+    direct = optimize(problem, solver=direct_name)
+    mg = optimize(problem, solver="multigrid")
+    assert mg.solver == "multigrid"
+    assert abs(mg.compliance - direct.compliance) <= 5e-3 * direct.compliance
+    assert mg.iterations == direct.iterations or abs(mg.iterations - direct.iterations) <= 5
