@@ -340,6 +340,16 @@ class MultigridHierarchy:
                 self.levels.append(lev)
         self._coarse_factor = _factorise(operators[-1])
 
+    def release(self) -> None:
+        """Drop the operators (kept: eigenvector estimates for the next update).
+
+        Between optimisation iterations this frees the finest matrix, which otherwise
+        stays alive while the next one is assembled (2 GB at 1e6 H8 elements).
+        """
+        for lev in self.levels:
+            lev.A = None
+        self._coarse_factor = None
+
     def vcycle(self, b: np.ndarray, level: int = 0, *, degree: int = 2) -> np.ndarray:
         """Apply one symmetric V-cycle (an approximation of A^-1 b)."""
         if level == len(self.levels):

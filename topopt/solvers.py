@@ -152,6 +152,7 @@ class MultigridSolver:
                     f"multigrid-CG did not converge in {self.max_iterations} iterations"
                 )
         self._previous = U.copy()
+        self.hierarchy.release()
         return U.reshape(F.shape)
 
 
