@@ -18,8 +18,10 @@ import numpy as np
 
 from filters.chain import FilterChain, FixedValues
 from filters.density import density_filter
+from filters.projection import HeavisideProjection, heaviside_projection
 from topopt.objective import ComplianceModel, grey_level, volume_fraction
-from topopt.optimizers import oc_update
+from topopt import robust
+from topopt.optimizers import MMAComplianceUpdate, oc_update
 
 HISTORY_COLUMNS = ("iteration", "compliance", "volume_fraction", "change", "grey_level", "elapsed_s")
 
@@ -41,17 +43,24 @@ class Result:
     grey_level: float = float("nan")
 
 
-def build_filter_chain(problem) -> FilterChain:
+def build_filter_chain(problem, *, eta: float | None = None) -> FilterChain:
     """The chain from design variables to physical density for ``problem``.
 
     Order: density filter, (projection), passive values, (printability filter last,
-    so the physical density is what prints).
+    so the physical density is what prints). ``eta`` overrides the projection threshold
+    (the robust formulation builds one chain per threshold, see :func:`build_filter_chains`).
     """
     grid = problem.grid
     links = [
-        density_filter(grid.shape, radius=problem.optimize.filter_radius, element_size=grid.element_size)
+        density_filter(grid.shape, radius=robust.filter_radius(problem), element_size=grid.element_size)
     ]
-    # -- projection link (inserted here when [optimize.projection] is set) --
+    # -- projection link (when [optimize.projection] or min_member_size is set) --
+    etas = robust.thresholds(problem)
+    if etas:
+        start = robust.projection_settings(problem).beta_start
+        default_eta = etas[robust.BLUEPRINT] if len(etas) > 1 else etas[0]
+        links.append(heaviside_projection(grid.shape, beta=start,
+                                          eta=default_eta if eta is None else eta))
     links.append(FixedValues(problem.passive_solid, problem.passive_void))
     # -- printability link (appended here when build.direction != "none") --
     if problem.build.direction != "none":
@@ -60,6 +69,22 @@ def build_filter_chain(problem) -> FilterChain:
         links.append(printability_filter(grid.shape, direction=problem.build.direction,
                                          overhang_angle=problem.build.overhang_angle))
     return FilterChain(links)
+
+
+def build_filter_chains(problem) -> list[FilterChain]:
+    """One chain per projection threshold (three in the robust formulation, else one)."""
+    etas = robust.thresholds(problem)
+    if len(etas) > 1:
+        return [build_filter_chain(problem, eta=eta) for eta in etas]
+    return [build_filter_chain(problem)]
+
+
+def set_beta(chains, beta: float) -> None:
+    """Set the sharpness of every projection link in ``chains``."""
+    for chain in chains:
+        for link in chain.links:
+            if isinstance(link, HeavisideProjection):
+                link.beta = beta
 
 
 #: Move limit used with the printability filter when the problem file sets none. The
@@ -119,11 +144,18 @@ def optimize(
     """
     settings = problem.optimize
     model = ComplianceModel(problem, solver=solver)
-    chain = build_filter_chain(problem)
+    chains = build_filter_chains(problem)
+    # the blueprint design is the one printed, reported and volume-constrained
+    chain = chains[robust.BLUEPRINT] if len(chains) > 1 else chains[0]
+    schedule = robust.beta_schedule(problem)
     move_limit = _move_limit(problem)
     active = ~(problem.passive_solid | problem.passive_void)
     n = active.size
     unit_volume_gradient = np.full(problem.grid.shape, 1.0 / n)
+    updater = None
+    if settings.method == "mma":
+        updater = MMAComplianceUpdate(active, volume_fraction=settings.volume_fraction,
+                                      n_designs=len(chains), move=move_limit)
 
     x = initial_design(problem)
     history: list[dict] = []
@@ -134,6 +166,13 @@ def optimize(
         history = [dict(row) for row in resume["history"]]
         start_iteration = int(resume["iteration"])
         elapsed_before = float(history[-1]["elapsed_s"]) if history else 0.0
+        if schedule is not None and "continuation_beta" in resume:
+            schedule.restore({"beta": resume["continuation_beta"],
+                              "since_increase": resume["continuation_since_increase"]})
+        if updater is not None:
+            updater.restore(resume)
+    if schedule is not None:
+        set_beta(chains, schedule.beta)
 
     t0 = time.perf_counter() - elapsed_before
     converged = False
@@ -141,7 +180,13 @@ def optimize(
     bar = _progress_bar(progress, settings.max_iterations, start_iteration)
 
     def state(iteration: int) -> dict:
-        return {"design": x, "iteration": iteration, "history": history}
+        out = {"design": x, "iteration": iteration, "history": history}
+        if schedule is not None:
+            out["continuation_beta"] = schedule.beta
+            out["continuation_since_increase"] = schedule.since_increase
+        if updater is not None:
+            out.update(updater.state())
+        return out
 
     iteration = start_iteration
     try:
@@ -151,10 +196,17 @@ def optimize(
             dc = chain.backward(ev.gradient)
             dv = chain.backward(unit_volume_gradient)
             vol = volume_fraction(physical)
-            x_new = oc_update(
-                x, dc, dv, volume=vol, volume_fraction=settings.volume_fraction,
-                move=move_limit, active=active,
-            )
+            compliances, gradients = [ev.compliance], [dc]
+            if len(chains) > 1:
+                # robust formulation: eroded, blueprint and dilated designs
+                compliances, gradients = _robust_designs(chains, model, x, ev, dc)
+            if updater is None:
+                x_new = oc_update(
+                    x, dc, dv, volume=vol, volume_fraction=settings.volume_fraction,
+                    move=move_limit, active=active,
+                )
+            else:
+                x_new = updater(x, compliances=compliances, gradients=gradients, volume=vol, dv=dv)
             change = float(np.max(np.abs(x_new - x)))
             x = x_new
             iteration += 1
@@ -166,14 +218,22 @@ def optimize(
                 "grey_level": grey_level(physical),
                 "elapsed_s": time.perf_counter() - t0,
             }
+            if len(chains) > 1:
+                row["compliance_eroded"] = compliances[0]
+                row["compliance_dilated"] = compliances[2]
+            if schedule is not None:
+                row["beta"] = schedule.beta
             history.append(row)
             if bar is not None:
                 bar.update(1)
                 bar.set_postfix(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
-            if change < settings.change_tolerance:
+            # with continuation, only a still design at the final beta counts as converged
+            if change < settings.change_tolerance and (schedule is None or schedule.at_max):
                 converged = True
                 message = f"converged: largest design change {change:.4g} < {settings.change_tolerance}"
                 break
+            if schedule is not None and schedule.step(change=change):
+                set_beta(chains, schedule.beta)
             if checkpoint is not None and iteration % settings.checkpoint_every == 0:
                 checkpoint(state(iteration))
     except KeyboardInterrupt:
@@ -199,6 +259,20 @@ def optimize(
         solver=model.solver.name,
         grey_level=grey_level(physical),
     )
+
+
+def _robust_designs(chains, model, x, blueprint_eval, blueprint_gradient):
+    """Compliances and design gradients of the eroded, blueprint and dilated designs."""
+    compliances, gradients = [], []
+    for k, other in enumerate(chains):
+        if k == robust.BLUEPRINT:
+            compliances.append(blueprint_eval.compliance)
+            gradients.append(blueprint_gradient)
+            continue
+        ev = model.evaluate(other.forward(x))
+        compliances.append(ev.compliance)
+        gradients.append(other.backward(ev.gradient))
+    return compliances, gradients
 
 
 def _progress_bar(show: bool, total: int, initial: int):

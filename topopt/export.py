@@ -99,7 +99,20 @@ def summary_dict(result, problem) -> dict:
     }
     # -- print-preparation fields (unsupported_elements, overhang_area) are added here --
     summary.update(printability_summary(result.density, problem))
+    summary.update(length_scale_summary(result.density, problem))
     return summary
+
+
+def length_scale_summary(density: np.ndarray, problem) -> dict:
+    """``min_member_size`` and ``min_gap_size`` of a physical density (0.5 level).
+
+    Measured by the opening test of :func:`topopt.lengthscale.minimum_member_size`, with
+    the design mirrored across the domain edges; null when a phase is absent.
+    """
+    from topopt.lengthscale import minimum_member_size
+
+    sizes = minimum_member_size(density, element_size=problem.grid.element_size)
+    return {"min_member_size": sizes["solid"], "min_gap_size": sizes["void"]}
 
 
 def printability_summary(density: np.ndarray, problem) -> dict:

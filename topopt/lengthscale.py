@@ -15,40 +15,94 @@ import math
 import numpy as np
 
 
-def _digital_ball(diameter: int, dim: int) -> np.ndarray:
-    """Pixels of a ``diameter``-wide box whose centres lie in the inscribed disk/ball.
+def _opening_keeps(phase: np.ndarray, diameter: int, outside: bool | None) -> bool:
+    """Whether opening ``phase`` with the digital ball of ``diameter`` leaves it unchanged.
 
-    For odd diameters the ball is centred on a pixel, for even ones on a pixel corner, so
-    every integer width is available and a ball of diameter d fits in a strip of width d
-    along any axis.
+    The digital ball of diameter d holds the pixels of a d-wide box whose centres lie
+    within d/2 of the box centre: centred on a pixel for odd d and on a pixel corner for
+    even d, so every integer width is available and the ball fits in a straight strip of
+    width d. Erosion and dilation are done with Euclidean distance transforms (on a lattice
+    of half-element spacing for even d, so corner centres are lattice points), which costs
+    O(n) whatever the diameter. ``outside`` None mirrors the design across the domain
+    edges; True or False pads with that constant.
     """
-    offsets = np.arange(diameter) - (diameter - 1) / 2.0
-    grids = np.meshgrid(*([offsets] * dim), indexing="ij")
-    dist2 = sum(gr**2 for gr in grids)
-    return dist2 <= (diameter / 2.0) ** 2 + 1e-9
+    from scipy import ndimage
+
+    pad = diameter + 1
+    if outside is None:
+        padded = np.pad(phase, pad, mode="symmetric")
+    else:
+        padded = np.pad(phase, pad, mode="constant", constant_values=outside)
+    if padded.all():
+        return True
+    reach = diameter / 2.0 + 1e-9
+    if diameter % 2:
+        # ball centres on pixel centres: work on the element lattice
+        eroded = ndimage.distance_transform_edt(padded) > reach
+        if not eroded.any():
+            return False
+        covered = ndimage.distance_transform_edt(~eroded) <= reach
+    else:
+        # ball centres on pixel corners: half-spacing lattice, pixel centres at odd indices
+        fine_shape = tuple(2 * n + 1 for n in padded.shape)
+        centres = tuple(slice(1, None, 2) for _ in padded.shape)
+        corners = tuple(slice(0, None, 2) for _ in padded.shape)
+        free = np.ones(fine_shape, dtype=bool)
+        free[centres] = padded  # zeros at the centres of the other phase
+        eroded_corners = ndimage.distance_transform_edt(free)[corners] / 2.0 > reach
+        if not eroded_corners.any():
+            return False
+        not_eroded = np.ones(fine_shape, dtype=bool)
+        not_eroded[corners] = ~eroded_corners
+        covered = ndimage.distance_transform_edt(not_eroded)[centres] / 2.0 <= reach
+    inner = tuple(slice(pad, pad + n) for n in phase.shape)
+    return bool(np.all(covered[inner][phase]))
+
+
+_EVEN_CHECK_UP_TO = 16
 
 
 def _largest_fitting_diameter(phase: np.ndarray, limit: int, outside: bool | None) -> int:
     """Largest d <= limit such that opening ``phase`` with a d-ball leaves it unchanged.
 
-    ``outside`` None mirrors the design across the domain edges; True or False pads with
-    that constant.
+    Diameters up to 6 are tried one by one. Beyond them the search runs over odd
+    diameters (cheap: element lattice), growing geometrically and then bisecting, and
+    finally tries the next even diameter once (up to 16 elements; above that the result
+    can be one element short); it assumes that when a ball fits
+    everywhere every smaller ball does (true for continuous disks, close for digital ones).
     """
-    from scipy import ndimage
-
+    small = min(limit, 6)
     best = 0
-    for d in range(1, limit + 1):
-        pad = d + 1
-        if outside is None:
-            padded = np.pad(phase, pad, mode="symmetric")
-        else:
-            padded = np.pad(phase, pad, mode="constant", constant_values=outside)
-        ball = _digital_ball(d, phase.ndim)
-        opened = ndimage.binary_opening(padded, structure=ball)
-        inner = tuple(slice(pad, pad + n) for n in phase.shape)
-        if not np.array_equal(opened[inner], phase):
-            break
+    for d in range(1, small + 1):
+        if not _opening_keeps(phase, d, outside):
+            return best
         best = d
+    if best == limit:
+        return best
+    best_odd = 5
+    failed = None
+    d = 7
+    while d <= limit:
+        if not _opening_keeps(phase, d, outside):
+            failed = d
+            break
+        best_odd = d
+        d = d + 2 * max(1, d // 4)
+    if failed is None:
+        failed = limit + 1 if limit % 2 == 0 else limit + 2  # first odd diameter beyond
+    while failed - best_odd > 2:
+        mid = best_odd + 2 * ((failed - best_odd) // 4)
+        if _opening_keeps(phase, mid, outside):
+            best_odd = mid
+        else:
+            failed = mid
+    best = max(best, best_odd)
+    # Even diameters need the half-spacing lattice (2**dim times the points); above
+    # _EVEN_CHECK_UP_TO elements the one-element refinement is not worth that memory.
+    candidate = best + 1
+    if candidate <= min(limit, _EVEN_CHECK_UP_TO) and candidate != failed:
+        if _opening_keeps(phase, candidate, outside):
+            best = candidate
     return best
 
 
@@ -60,8 +114,10 @@ def minimum_member_size(
     The design is thresholded at ``level`` (solid where density > level). The solid size
     is ``d * element_size`` for the largest digital disk/ball diameter ``d`` (elements)
     whose opening leaves the solid unchanged; likewise for the void. A straight bar of
-    ``w`` elements measures ``w``; oblique or curved members come out to within about one
-    element of their width.
+    ``w`` elements measures ``w`` (above 16 elements possibly ``w - 1``); oblique or curved
+    members come out to within about one element of their width. A sharp convex corner
+    counts as thin (a disk does not reach into it), so a rectangle cut off by an edge
+    measures small with ``boundary="void"``.
 
     Parameters
     ----------

@@ -64,6 +64,7 @@ class Projection:
     beta_max: float = 32.0
     eta: float = 0.5
     every: int = 40
+    robust_delta: float = 0.25
 
 
 @dataclass(frozen=True)
@@ -455,7 +456,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
                      f"{vf} exceeds the share of elements outside passive void ({(n - void.sum()) / n:.3f})")
     projection = None
     if "projection" in opt:
-        pt = r.table(opt, "projection", {"beta_start", "beta_max", "eta", "every"})
+        pt = r.table(opt, "projection", {"beta_start", "beta_max", "eta", "every", "robust_delta"})
         projection = Projection(
             beta_start=r.number(pt, "beta_start", "optimize.projection.beta_start", default=1.0,
                                 low=0.0, low_open=True),
@@ -464,6 +465,8 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
             eta=r.number(pt, "eta", "optimize.projection.eta", default=0.5, low=0.0, high=1.0,
                          low_open=True, high_open=True),
             every=r.number(pt, "every", "optimize.projection.every", default=40, low=1, integer=True),
+            robust_delta=r.number(pt, "robust_delta", "optimize.projection.robust_delta",
+                                  default=0.25, low=0.0, high=0.5, low_open=True, high_open=True),
         )
         if projection.beta_max < projection.beta_start:
             raise r.fail("optimize.projection.beta_max", "expected beta_max >= beta_start")
@@ -486,6 +489,16 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         min_member_size=r.number(opt, "min_member_size", "optimize.min_member_size",
                                  default=None, low=0.0, low_open=True),
     )
+    if optimize.min_member_size is not None:
+        if optimize.method != "mma":
+            raise r.fail("optimize.min_member_size",
+                         'the robust formulation needs method = "mma" in [optimize]')
+        if "filter_radius" in opt:
+            raise r.fail("optimize.min_member_size",
+                         "sets the filter radius itself; remove optimize.filter_radius")
+        if optimize.min_member_size < 2.0 * h:
+            raise r.fail("optimize.min_member_size",
+                         f"expected at least two elements ({2.0 * h:g}), got {optimize.min_member_size!r}")
     from topopt.solvers import SOLVERS
 
     if optimize.solver not in set(SOLVERS) | {"auto"}:

@@ -93,3 +93,47 @@ def test_bad_input(kwargs, match):
         minimum_member_size(np.zeros((4, 4)), **kwargs)
     with pytest.raises(ValueError, match="2D or 3D"):
         minimum_member_size(np.zeros(4), element_size=1.0)
+
+
+def _opening_keeps_by_structuring_element(phase, diameter):
+    """Independent check: scipy's binary opening with an explicit digital ball."""
+    from scipy import ndimage
+
+    offsets = np.arange(diameter) - (diameter - 1) / 2.0
+    grids = np.meshgrid(*([offsets] * phase.ndim), indexing="ij")
+    ball = sum(g**2 for g in grids) <= (diameter / 2.0) ** 2 + 1e-9
+    pad = diameter + 1
+    padded = np.pad(phase, pad, mode="symmetric")
+    opened = ndimage.binary_opening(padded, structure=ball)
+    inner = tuple(slice(pad, pad + n) for n in phase.shape)
+    return bool(np.array_equal(opened[inner], phase))
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_distance_transform_opening_matches_binary_opening(seed):
+    # the fast opening (distance transforms) against scipy.ndimage.binary_opening with an
+    # explicit structuring element, on random smooth blobs, diameters 1..9
+    from scipy import ndimage
+
+    from topopt.lengthscale import _opening_keeps
+
+    rng = np.random.default_rng(seed)
+    field = ndimage.gaussian_filter(rng.random((36, 28)), 2.5)
+    for phase in (field > np.median(field), field <= np.median(field)):
+        for d in range(1, 10):
+            assert _opening_keeps(phase, d, None) == _opening_keeps_by_structuring_element(
+                phase, d
+            ), d
+
+
+@pytest.mark.parametrize("width", [9, 12, 16, 17, 21, 24])
+def test_wide_bars_use_the_search_path(width):
+    # beyond 6 elements the search grows and bisects; exact up to 16, then odd widths
+    # exact and even ones possibly one element short (documented)
+    rho = np.zeros((90, 70))
+    rho[:, 20 : 20 + width] = 1.0
+    solid = minimum_member_size(rho, element_size=1.0)["solid"]
+    if width <= 16 or width % 2:
+        assert solid == width
+    else:
+        assert width - 1 <= solid <= width

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq, fsolve
 
-from topopt.mma import MMA
+from topopt.optimizers import MMA
 
 
 def _run(opt, x, f0, df0, g, dg, iterations=300, tol=1e-10):
