@@ -456,7 +456,9 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
                      f"{vf} exceeds the share of elements outside passive void ({(n - void.sum()) / n:.3f})")
     projection = None
     if "projection" in opt:
-        pt = r.table(opt, "projection", {"beta_start", "beta_max", "eta", "every", "robust_delta"})
+        # looked up through the dotted name so errors name optimize.projection.<key>
+        pt = r.table({"optimize": opt}, "optimize.projection",
+                     {"beta_start", "beta_max", "eta", "every", "robust_delta"})
         projection = Projection(
             beta_start=r.number(pt, "beta_start", "optimize.projection.beta_start", default=1.0,
                                 low=0.0, low_open=True),
