@@ -2,16 +2,18 @@
 
 Source: common practice (STYLE.md: every example is run on a small grid by a test). A
 problem file is loaded with :func:`topopt.load_problem` and optimised for three
-iterations on its own grid; a study file (a table with ``problem`` and ``[vary]``) must
-point at a problem file that loads, and every case it describes must validate, two of
-them (the first and the last) are run for two iterations. Example scripts (``*.py``)
-are imported, which must not start any long computation.
+iterations on its own grid (on a coarsened copy above 5000 elements); a study file (a
+table with ``problem`` and ``[vary]``) must point at a problem file that loads, and
+every case it describes must validate, two of them (the first and the last) are run for
+two iterations. Example scripts (``*.py``) are imported, which must not start any long
+computation.
 """
 
 from __future__ import annotations
 
 import importlib.util
 import itertools
+import math
 import tomllib
 from pathlib import Path
 
@@ -43,7 +45,25 @@ def test_every_example_names_itself_invented_or_published():
         assert "invented" in head or "et al." in head or "benchmark" in head, path.name
 
 
+#: Larger examples run on a coarsened copy (same extent in length units, element size
+#: times an integer) so the default test run stays fast.
+MAX_ELEMENTS = 5000
+
+
+def coarsened(problem):
+    """``problem`` on at most about MAX_ELEMENTS elements (unchanged if already small)."""
+    grid = problem.grid
+    factor = math.ceil((grid.n_elements / MAX_ELEMENTS) ** (1.0 / grid.dim))
+    if factor <= 1:
+        return problem
+    shape = [max(1, round(n / factor)) for n in grid.shape]
+    return with_settings(problem, {"domain.shape": shape,
+                                   "domain.element_size": grid.element_size * factor})
+
+
 def _run_briefly(problem, iterations: int):
+    problem = coarsened(problem)
+    assert problem.grid.n_elements <= 2 * MAX_ELEMENTS
     quick = with_settings(problem, {"optimize.max_iterations": iterations})
     result = optimize(quick)
     assert result.iterations == iterations
