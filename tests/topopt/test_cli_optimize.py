@@ -249,6 +249,9 @@ def assert_same_run(resumed: dict, reference: dict) -> None:
     got = [float(r["compliance"]) for r in resumed["history"]]
     want = [float(r["compliance"]) for r in reference["history"]]
     assert np.allclose(got, want, rtol=1e-12, atol=0)
+    # The clock continues across the interruption (seconds since the run started).
+    elapsed = [float(r["elapsed_s"]) for r in resumed["history"]]
+    assert elapsed == sorted(elapsed)
 
 
 def test_resume_with_a_changed_problem_is_refused(tmp_path, monkeypatch, capsys):
