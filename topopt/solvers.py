@@ -164,18 +164,22 @@ SOLVERS: dict[str, Callable[..., object]] = {
 }
 
 #: Free-dof counts above which "auto" picks multigrid-CG over the direct solver.
-#: Measured on the 2-core machine of benchmarks/results.md (one full iteration, smooth
-#: cantilever density; see benchmarks/iteration.py): in 3D CHOLMOD and multigrid-CG
-#: cross near MEASURED_3D dofs; in 2D the direct solver stays faster up to MEASURED_2D.
-AUTO_MULTIGRID_DOFS = {2: 400_000, 3: 60_000}
+#: Measured with benchmarks/iteration.py (benchmarks/results.md; 2-core AMD EPYC,
+#: one thread per job, CPU seconds of one full iteration, smooth cantilever field):
+#: 3D: multigrid 0.10 s vs CHOLMOD 0.14 s at 7,260 dofs, 0.41 s vs 0.96 s at 33,048,
+#: 2.5 s vs 20.8 s at 190,464, so multigrid from 10,000 dofs on (below that both take
+#: about 0.1 s and the direct solve is exact). 2D: equal (0.08 s) at 20,448 dofs,
+#: 0.18 s vs 0.22 s at 60,024, 0.53 s vs 0.98 s at 201,600: multigrid from 100,000.
+AUTO_MULTIGRID_DOFS = {2: 100_000, 3: 10_000}
 
 
 def choose_solver(*, grid: Grid, free_dofs: np.ndarray) -> str:
     """Name of the solver ``"auto"`` picks for this problem.
 
     Direct (CHOLMOD, else SciPy) below :data:`AUTO_MULTIGRID_DOFS` free dofs,
-    multigrid-CG above; without CHOLMOD the SciPy direct solver is slow, so multigrid
-    takes over at a tenth of that size.
+    multigrid-CG above. Without CHOLMOD the SciPy direct solver is several times slower
+    (the spsolve column of benchmarks/results.md), so multigrid takes over at a tenth
+    of that size (a rule of thumb, not a measured crossover).
     """
     n_free = int(np.asarray(free_dofs).size)
     limit = AUTO_MULTIGRID_DOFS[grid.dim]
