@@ -344,3 +344,12 @@ def test_negative_input_is_rejected():
     f = printability_filter((3, 3), direction="+y")
     with pytest.raises(ValueError, match="non-negative"):
         f.forward(np.full((3, 3), -0.1))
+
+
+def test_filter_meets_the_protocol():
+    from filters.chain import Filter, FilterChain
+
+    f = printability_filter((5, 4), direction="-y")
+    assert isinstance(f, Filter)
+    x = np.random.default_rng(2).random((5, 4))
+    np.testing.assert_array_equal(FilterChain([f]).forward(x), f.forward(x))
