@@ -119,11 +119,13 @@ def printability_summary(density: np.ndarray, problem) -> dict:
     """``unsupported_elements`` and ``overhang_area`` of a physical density (0.5 level).
 
     Both are null when the build direction is ``"none"`` (no direction to judge by).
+    ``enforced_overhang_angle`` is the angle the grid enforces for the requested one.
     """
     direction = problem.build.direction
     if direction == "none":
-        return {"unsupported_elements": None, "overhang_area": None}
-    from filters.printability import overhang_area, unsupported_count
+        return {"unsupported_elements": None, "overhang_area": None,
+                "enforced_overhang_angle": None}
+    from filters.printability import enforced_overhang_angle, overhang_area, unsupported_count
 
     grid = problem.grid
     angle = problem.build.overhang_angle
@@ -133,6 +135,7 @@ def printability_summary(density: np.ndarray, problem) -> dict:
         "overhang_area": overhang_area(density, direction=direction, overhang_angle=angle,
                                        element_size=grid.element_size,
                                        thickness=grid.thickness if grid.dim == 2 else 1.0),
+        "enforced_overhang_angle": enforced_overhang_angle(angle),
     }
 
 

@@ -160,7 +160,9 @@ def test_csv_agrees_with_results_folders(mbb_comparison):
         assert float(t["compliance_increase_percent"]) == pytest.approx(expected, abs=1e-9)
         if t["direction"] == "none":
             assert t["unsupported_elements"] == "" and t["overhang_area"] == ""
+            assert summary["enforced_overhang_angle"] is None
         else:
+            assert summary["enforced_overhang_angle"] == 45.0
             assert int(t["unsupported_elements"]) == summary["unsupported_elements"]
             assert float(t["overhang_area"]) == summary["overhang_area"]
     png = (out / "comparison.png").read_bytes()
