@@ -91,7 +91,7 @@ def reference_printable(solid: np.ndarray, direction: str, angle: float) -> np.n
     return printed
 
 
-CASES_01 = [((9, 7), seed) for seed in range(4)] + [((5, 4, 6), seed) for seed in range(3)]
+CASES_01 = [((9, 7), seed) for seed in range(8)] + [((5, 4, 6), seed) for seed in range(5)]
 
 
 @pytest.mark.parametrize("angle", sorted(RULES))
