@@ -252,9 +252,10 @@ def _power(r, p, p_int):  # noqa: D103 - kernel
 
 
 @numba.njit(cache=True)
-def _forward_kernel(x, offsets, rise, eps, p, p_int, q, xi, support, top, psum):  # noqa: D103
+def _forward_kernel(x, keep, offsets, rise, eps, p, p_int, q, xi, support, top, psum):  # noqa: D103
     # Also stores, per element, the largest support value (top) and the scaled P-sum
-    # (psum) so that backward needs no second pass over the support region.
+    # (psum) so that backward needs no second pass over the support region. Elements
+    # with keep = 1 print as their input whatever lies below (xi = x).
     n_l, n_a, n_b = x.shape
     sq = math.sqrt(eps)
     n_s = offsets.shape[0]
@@ -289,12 +290,15 @@ def _forward_kernel(x, offsets, rise, eps, p, p_int, q, xi, support, top, psum):
                 top[ly, a, b] = m
                 psum[ly, a, b] = s
                 support[ly, a, b] = big
+                if keep[ly, a, b]:
+                    xi[ly, a, b] = x[ly, a, b]
+                    continue
                 d = x[ly, a, b] - big
                 xi[ly, a, b] = 0.5 * (x[ly, a, b] + big - math.sqrt(d * d + eps) + sq)
 
 
 @numba.njit(cache=True)
-def _backward_kernel(x, xi, support, top, psum, offsets, rise, eps, p, p_int, q, dy, dx):  # noqa: D103
+def _backward_kernel(x, keep, xi, support, top, psum, offsets, rise, eps, p, p_int, q, dy, dx):  # noqa: D103
     n_l, n_a, n_b = x.shape
     sq = math.sqrt(eps)
     n_s = offsets.shape[0]
@@ -309,6 +313,9 @@ def _backward_kernel(x, xi, support, top, psum, offsets, rise, eps, p, p_int, q,
         for a in range(n_a):
             for b in range(n_b):
                 g = lam[ly, a, b]
+                if keep[ly, a, b]:
+                    dx[ly, a, b] = g  # xi = x: nothing flows to the supports below
+                    continue
                 big = support[ly, a, b]
                 d = x[ly, a, b] - big
                 r = math.sqrt(d * d + eps)
@@ -360,10 +367,17 @@ class PrintabilityFilter:
     ``backward`` is the vector-Jacobian product at that input.
     """
 
-    def __init__(self, shape, *, direction, overhang_angle, epsilon, p, xi0):
+    def __init__(self, shape, *, direction, overhang_angle, epsilon, p, xi0, keep=None):
         self.shape = tuple(int(n) for n in shape)
         self.direction = direction
         self._axis, self._sign = _check_direction(direction, len(self.shape))
+        if keep is None:
+            keep = np.zeros(self.shape, dtype=bool)
+        keep = np.asarray(keep)
+        if keep.shape != self.shape or keep.dtype != bool:
+            raise ValueError(f"keep must be a boolean array of shape {self.shape}, got "
+                             f"{keep.dtype} {keep.shape}")
+        self._keep = np.ascontiguousarray(_to_layers(keep, self._axis, self._sign)).astype(np.uint8)
         rule = _rule_for(overhang_angle)
         self.overhang_angle = float(overhang_angle)
         self.enforced_angle = rule.angle
@@ -403,6 +417,7 @@ class PrintabilityFilter:
         xi, support, top, psum = (np.empty_like(xl) for _ in range(4))
         _forward_kernel(
             xl,
+            self._keep,
             self._offsets,
             self.rise,
             self.epsilon,
@@ -426,6 +441,7 @@ class PrintabilityFilter:
         dx = np.empty_like(xl)
         _backward_kernel(
             xl,
+            self._keep,
             xi,
             support,
             top,
@@ -450,6 +466,7 @@ def printability_filter(
     epsilon: float = 1e-4,
     p: float = 40.0,
     xi0: float = 0.5,
+    keep: np.ndarray | None = None,
 ) -> PrintabilityFilter:
     """Make the smoothed layer-wise printability filter for a grid and build direction.
 
@@ -469,6 +486,10 @@ def printability_filter(
         Exponent of the P-mean smooth maximum (> 0).
     xi0 : float
         Density at which the smooth maximum is exact for equal inputs, in (0, 1).
+    keep : ndarray of bool, optional
+        Elements that print as they are whatever lies below them: keep-in regions the
+        user requires, which build preparation will support if the design does not.
+        They support the elements above them like any printed element.
 
     Returns
     -------
@@ -496,7 +517,8 @@ def printability_filter(
     if not (0.0 < xi0 < 1.0):
         raise ValueError(f"xi0 must lie in (0, 1), got {xi0!r}")
     return PrintabilityFilter(
-        shape, direction=direction, overhang_angle=overhang_angle, epsilon=epsilon, p=p, xi0=xi0
+        shape, direction=direction, overhang_angle=overhang_angle, epsilon=epsilon, p=p, xi0=xi0,
+        keep=keep,
     )
 
 

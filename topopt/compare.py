@@ -20,13 +20,16 @@ from pathlib import Path
 import numpy as np
 
 #: Columns of ``comparison.csv``. ``free_design_unsupported_elements`` is the number of
-#: unsupported elements the free design would have if built along that row's direction.
+#: unsupported elements the free design would have if built along that row's direction;
+#: ``unsupported_keep_in_elements`` counts those of ``unsupported_elements`` that lie in
+#: keep-in regions (required by the user, printed with supports if nothing holds them).
 COLUMNS = [
     "direction",
     "compliance",
     "compliance_increase_percent",
     "volume_fraction",
     "unsupported_elements",
+    "unsupported_keep_in_elements",
     "overhang_area",
     "grey_level",
     "elapsed_s",
@@ -221,6 +224,7 @@ def comparison_rows(runs, summaries: dict, densities: dict, problem) -> list[dic
                 "compliance_increase_percent": 0.0 if d == "none" else increase,
                 "volume_fraction": s["volume_fraction"],
                 "unsupported_elements": s.get("unsupported_elements"),
+                "unsupported_keep_in_elements": s.get("unsupported_keep_in_elements"),
                 "overhang_area": s.get("overhang_area"),
                 "grey_level": s["grey_level"],
                 "elapsed_s": s["elapsed_s"],
@@ -269,8 +273,10 @@ def plot_comparison(rows: list[dict], densities: dict, problem, path: str | Path
         else:
             title = (
                 f"built along {d}: {row['compliance_increase_percent']:+.1f} %\n"
-                f"unsupported {row['unsupported_elements']} "
-                f"(free design: {row['free_design_unsupported_elements']})"
+                f"unsupported {row['unsupported_elements']}"
+                + (f" ({row['unsupported_keep_in_elements']} keep-in)"
+                   if row["unsupported_keep_in_elements"] else "")
+                + f" (free design: {row['free_design_unsupported_elements']})"
             )
         ax.set_title(title, fontsize=8)
         ax.tick_params(labelsize=6)

@@ -66,8 +66,11 @@ def build_filter_chain(problem, *, eta: float | None = None) -> FilterChain:
     if problem.build.direction != "none":
         from filters.printability import printability_filter
 
+        # keep-in regions are required geometry: they print (with supports if need be)
+        # and hold up what is built on them, rather than fading when nothing is below
         links.append(printability_filter(grid.shape, direction=problem.build.direction,
-                                         overhang_angle=problem.build.overhang_angle))
+                                         overhang_angle=problem.build.overhang_angle,
+                                         keep=problem.passive_solid))
     return FilterChain(links)
 
 

@@ -118,20 +118,27 @@ def length_scale_summary(density: np.ndarray, problem) -> dict:
 def printability_summary(density: np.ndarray, problem) -> dict:
     """``unsupported_elements`` and ``overhang_area`` of a physical density (0.5 level).
 
+    ``unsupported_keep_in_elements`` counts the unsupported elements that lie in keep-in
+    (passive solid) regions: the printability filter prints those whatever lies below,
+    because the user requires them, so they need support structures.
+
     Both are null when the build direction is ``"none"`` (no direction to judge by).
     ``enforced_overhang_angle`` is the angle the grid enforces for the requested one.
     """
     direction = problem.build.direction
     if direction == "none":
-        return {"unsupported_elements": None, "overhang_area": None,
-                "enforced_overhang_angle": None}
-    from filters.printability import enforced_overhang_angle, overhang_area, unsupported_count
+        return {"unsupported_elements": None, "unsupported_keep_in_elements": None,
+                "overhang_area": None, "enforced_overhang_angle": None}
+    from filters.printability import enforced_overhang_angle, overhang_area, supported_mask
 
     grid = problem.grid
     angle = problem.build.overhang_angle
+    solid = np.asarray(density) > 0.5
+    unsupported = solid & ~supported_mask(solid, direction=direction, overhang_angle=angle)
     return {
-        "unsupported_elements": unsupported_count(density, direction=direction,
-                                                  overhang_angle=angle),
+        "unsupported_elements": int(unsupported.sum()),
+        # keep-in elements print whatever lies below; these of them need supports
+        "unsupported_keep_in_elements": int((unsupported & problem.passive_solid).sum()),
         "overhang_area": overhang_area(density, direction=direction, overhang_angle=angle,
                                        element_size=grid.element_size,
                                        thickness=grid.thickness if grid.dim == 2 else 1.0),

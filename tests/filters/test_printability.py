@@ -258,9 +258,9 @@ def test_overhang_area_units():
     assert overhang_area(d3, direction="+z", element_size=2.0) == 9 * 4.0
 
 
-def _fd_check(shape, direction, angle, x, seed):
+def _fd_check(shape, direction, angle, x, seed, keep=None):
     rng = np.random.default_rng(seed)
-    f = printability_filter(shape, direction=direction, overhang_angle=angle)
+    f = printability_filter(shape, direction=direction, overhang_angle=angle, keep=keep)
     w = rng.standard_normal(shape)
     f.forward(x)
     grad = f.backward(w).ravel()
@@ -283,6 +283,34 @@ def test_backward_matches_central_differences(shape, angle):
         for x in (rng.uniform(0.05, 1.0, shape), rng.uniform(0.6, 1.0, shape)):
             err = _fd_check(shape, direction, angle, x, seed=5)
             assert err < 1e-5, (direction, err)
+
+
+@pytest.mark.parametrize("shape", [(6, 5), (4, 3, 5)])
+def test_backward_with_keep_in_matches_central_differences(shape):
+    # common practice: adjoint against central finite differences with keep-in elements
+    rng = np.random.default_rng(3)
+    keep = rng.uniform(size=shape) < 0.2
+    for direction in DIRECTIONS[len(shape)]:
+        x = rng.uniform(0.05, 1.0, shape)
+        assert _fd_check(shape, direction, 45.0, x, seed=2, keep=keep) < 1e-5, direction
+
+
+def test_keep_in_prints_and_supports_what_is_above():
+    # a keep-in element floating over powder prints as given and holds up the element
+    # resting on it (build preparation supports it); without keep it and its load fade
+    x = np.zeros((3, 5))
+    x[1, 3] = x[1, 4] = 1.0                      # column of two, floating at y = 3..4
+    keep = np.zeros((3, 5), dtype=bool)
+    keep[1, 3] = True
+    printed = printability_filter((3, 5), direction="+y", keep=keep).forward(x)
+    assert printed[1, 3] == 1.0 and printed[1, 4] > 0.99
+    faded = printability_filter((3, 5), direction="+y").forward(x)
+    assert faded[1, 3] < 0.1 and faded[1, 4] < 0.1
+
+
+def test_keep_must_match_shape():
+    with pytest.raises(ValueError, match="keep"):
+        printability_filter((3, 5), direction="+y", keep=np.zeros((5, 3), dtype=bool))
 
 
 def test_backward_needs_forward_and_matching_shape():
