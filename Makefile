@@ -8,8 +8,9 @@ setup:
 	@bash tools/bootstrap.sh
 
 demo: setup
-	$(BIN)/buttress optimize examples/wall-bracket-2d.toml --out demo-results/wall-bracket --overwrite
-	@echo "picture: demo-results/wall-bracket/design.png"
+	$(BIN)/buttress compare examples/wall-bracket-2d.toml --out demo-results/wall-bracket --overwrite
+	@echo "table: demo-results/wall-bracket/comparison.csv"
+	@echo "picture: demo-results/wall-bracket/comparison.png"
 
 test: setup
 	$(BIN)/python -m pytest -q
