@@ -90,31 +90,6 @@ def set_beta(chains, beta: float) -> None:
                 link.beta = beta
 
 
-#: Move limit used with the printability filter when the problem file sets none. The
-#: filter's response is strongly nonlinear (a uniform field below xi0 = 0.5 fades layer
-#: by layer, one above it does not), and OC with the default 0.2 oscillated between a
-#: faded and an overfull design on the wall bracket built along -x; 0.1 converged on
-#: every direction of the bracket and the MBB beam (measured, see tests/topopt/test_compare.py).
-PRINTABILITY_MOVE_LIMIT = 0.1
-
-
-#: Move limit used with projection when the problem file sets none. With 0.2 the robust
-#: MBB beam (min_member_size 3, MMA) lost a member of its eroded design right after beta
-#: reached 32 (eroded compliance 267 -> 737) and settled in a much worse design
-#: (blueprint compliance 354); with 0.1 it went on smoothly to 200 (measured).
-PROJECTION_MOVE_LIMIT = 0.1
-
-
-def _move_limit(problem) -> float:
-    settings = problem.optimize
-    given = "move_limit" in (problem.source.get("optimize") or {})
-    if problem.build.direction != "none" and not given:
-        return min(settings.move_limit, PRINTABILITY_MOVE_LIMIT)
-    if robust.thresholds(problem) and not given:
-        return min(settings.move_limit, PROJECTION_MOVE_LIMIT)
-    return settings.move_limit
-
-
 def initial_design(problem) -> np.ndarray:
     """Uniform design meeting the volume fraction, passive elements at 0 / 1."""
     solid, void = problem.passive_solid, problem.passive_void
@@ -160,7 +135,7 @@ def optimize(
     # the blueprint design is the one printed, reported and volume-constrained
     chain = chains[robust.BLUEPRINT] if len(chains) > 1 else chains[0]
     schedule = robust.beta_schedule(problem)
-    move_limit = _move_limit(problem)
+    move_limit = settings.move_limit
     active = ~(problem.passive_solid | problem.passive_void)
     n = active.size
     unit_volume_gradient = np.full(problem.grid.shape, 1.0 / n)

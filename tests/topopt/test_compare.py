@@ -334,7 +334,7 @@ def test_full_bracket_comparison_on_two_cores(tmp_path):
 
 def test_driver_appends_printability_filter_last():
     from filters.printability import PrintabilityFilter
-    from topopt.driver import _move_limit, build_filter_chain
+    from topopt.driver import build_filter_chain
 
     free = _small_mbb()
     assert not isinstance(build_filter_chain(free).links[-1], PrintabilityFilter)
@@ -342,7 +342,7 @@ def test_driver_appends_printability_filter_last():
     last = build_filter_chain(built).links[-1]
     assert isinstance(last, PrintabilityFilter)
     assert last.direction == "-x" and last.enforced_angle == 45.0
-    # the smaller move limit applies only when the file does not set one
-    assert _move_limit(free) == free.optimize.move_limit
-    assert _move_limit(built) == 0.1
-    assert _move_limit(with_settings(built, {"optimize.move_limit": 0.3})) == 0.3
+    # the smaller default move limit applies only when the file does not set one
+    assert free.optimize.move_limit == 0.2
+    assert built.optimize.move_limit == 0.1
+    assert with_settings(built, {"optimize.move_limit": 0.3}).optimize.move_limit == 0.3
