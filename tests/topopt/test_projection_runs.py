@@ -320,3 +320,34 @@ def test_robust_run_in_3d():
     assert result.history[-1]["compliance"] < result.history[0]["compliance"]
     assert result.volume_fraction <= 0.4 + 1e-3
     assert all(r["compliance_eroded"] >= r["compliance_dilated"] for r in result.history)
+
+
+def test_resume_through_the_checkpoint_file(tmp_path):
+    # the loop state of a projection + robust MMA run survives the .npz checkpoint of
+    # `buttress optimize` (plain arrays, no pickle) and the resumed run repeats the full one
+    from topopt.commands.optimize import load_checkpoint, save_checkpoint
+
+    data = _coarse_mbb(
+        method="mma",
+        min_member_size=2.0,
+        checkpoint_every=5,
+        projection=dict(beta_start=1.0, beta_max=4.0, every=4),
+    )
+    data["optimize"].pop("filter_radius")
+    data["optimize"]["max_iterations"] = 14
+    p = problem_from_dict(data, source="t.toml")
+    path = tmp_path / "checkpoint.npz"
+    saved = []
+
+    def keep(state):
+        if state["iteration"] == 10:
+            save_checkpoint(path, state, "digest")
+        saved.append(state["iteration"])
+
+    full = optimize(p, checkpoint=keep)
+    assert 10 in saved
+    state = load_checkpoint(path, "digest")
+    assert state["continuation_beta"] == 4.0 and "mma_asy_low" in state
+    resumed = optimize(p, resume=state)
+    np.testing.assert_allclose(resumed.design, full.design, atol=1e-10)
+    assert resumed.compliance == pytest.approx(full.compliance, rel=1e-9)
