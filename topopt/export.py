@@ -30,11 +30,19 @@ def atomic_write(path: str | Path, write: Callable[[io.BufferedWriter], None]) -
     try:
         with os.fdopen(fd, "wb") as handle:
             write(handle)
+        # mkstemp creates the file private (0600); results are ordinary files
+        os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def write_text(path: str | Path, text: str) -> None:

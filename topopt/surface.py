@@ -9,7 +9,6 @@ Coordinates follow the grid convention: element ``[i, j, k]`` spans
 from __future__ import annotations
 
 import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -363,16 +362,14 @@ def write_stl(path: str | os.PathLike, vertices: np.ndarray, faces: np.ndarray) 
     records["normal"] = _face_normals(vertices, faces)
     records["vertices"] = vertices[faces]
     header = b"buttress binary STL".ljust(80, b" ")
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(header)
-            handle.write(np.uint32(len(faces)).tobytes())
-            handle.write(records.tobytes())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    from topopt.export import atomic_write
+
+    def write(handle) -> None:
+        handle.write(header)
+        handle.write(np.uint32(len(faces)).tobytes())
+        handle.write(records.tobytes())
+
+    atomic_write(path, write)
     return path
 
 
