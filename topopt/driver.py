@@ -19,8 +19,8 @@ import numpy as np
 from filters.chain import FilterChain, FixedValues
 from filters.density import density_filter
 from filters.projection import HeavisideProjection, heaviside_projection
-from topopt.objective import ComplianceModel, grey_level, volume_fraction
 from topopt import robust
+from topopt.objective import ComplianceModel, grey_level, volume_fraction
 from topopt.optimizers import MMAComplianceUpdate, oc_update
 
 HISTORY_COLUMNS = ("iteration", "compliance", "volume_fraction", "change", "grey_level", "elapsed_s")

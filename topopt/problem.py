@@ -400,7 +400,8 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         case = r.string(item, "case", f"{key}.case", default="default")
         nodes = grid.select_nodes(where)
         if nodes.size == 0:
-            raise r.fail(f"{key}.where", f"selects no node (load outside the domain?); the domain spans {_extent(grid)}")
+            raise r.fail(f"{key}.where",
+                         f"selects no node (load outside the domain?); the domain spans {_extent(grid)}")
         loads.append(Load(where, tuple(force), case, nodes))
 
     solid = np.zeros(grid.shape, dtype=bool)
