@@ -370,12 +370,14 @@ def growth_exponents(result) -> dict:
     out = {}
     for kind in ("smooth", "random"):
         for who in ("ours", "direct"):
-            pts = [(r["n_elements"], r[who]["iterations"][-1]["total"])
-                   for r in result["runs"]
-                   if r["field"] == kind and who in r and "iterations" in r[who]]
-            if len(pts) >= 2:
-                n, t = np.array(pts).T
-                out[f"{who}/{kind}"] = float(np.polyfit(np.log(n), np.log(t), 1)[0])
+            for key, label in (("total", "wall"), ("total_cpu", "CPU")):
+                pts = [(r["n_elements"], r[who]["iterations"][-1][key])
+                       for r in result["runs"]
+                       if r["field"] == kind and who in r and "iterations" in r[who]]
+                if len(pts) >= 2:
+                    n, t = np.array(pts).T
+                    out[f"{who}/{kind}/{label}"] = float(
+                        np.polyfit(np.log(n), np.log(t), 1)[0])
     return out
 
 
@@ -410,7 +412,7 @@ def _fmt(value, digits=2):
 
 def markdown(results: list[dict]) -> str:
     lines = ["# Benchmarks: one optimisation iteration", ""]
-    lines.append("Written by `benchmarks/iteration.py` (do not edit by hand). Cantilever, "
+    lines.append("Tables written by `benchmarks/iteration.py --report`. Cantilever, "
                  "filter radius 1.5 elements, penalty 3, void stiffness 1e-9; times in "
                  "seconds, memory = peak resident set of the process. `ours` is the second "
                  "of two iterations with the same model (steady state: warm start); the "
@@ -432,7 +434,7 @@ def markdown(results: list[dict]) -> str:
         lines.append("")
         lines.append("| elements | dofs | field | solver | filter | assembly | solve (its) | "
                      "sensitivities | update | total s/it [first] | CPU s/it | peak GB | "
-                     "direct s/it | CHOLMOD solve | pyamg SA+CG (its) | spsolve | "
+                     "CHOLMOD s/it | CHOLMOD solve | pyamg SA+CG (its) | spsolve | "
                      "pyamg/ours solve, wall (CPU) | spsolve/ours solve, wall (CPU) | load |")
         lines.append("|" + "---|" * 19)
         for r in res["runs"]:
@@ -466,8 +468,11 @@ def markdown(results: list[dict]) -> str:
                         f"({v['cpu_s'] / it['solve_cpu']:.1f})")
 
             direct = r.get("direct", {})
-            direct_s = (_fmt(direct["iterations"][-1]["total"]) if "iterations" in direct
-                        else (direct.get("skipped", "not run") if direct else "not run"))
+            if "iterations" in direct:
+                d_it = direct["iterations"][-1]
+                direct_s = f"{_fmt(d_it['total'])} ({_fmt(d_it['total_cpu'])} CPU)"
+            else:
+                direct_s = direct.get("skipped", "not run") if direct else "not run"
             ratio_amg, ratio_sps = ratio("pyamg"), ratio("spsolve")
             load = f"{r['load_before'][0]:.1f}/{r['load_after'][0]:.1f}"
             lines.append(
@@ -479,6 +484,10 @@ def markdown(results: list[dict]) -> str:
                 f"{_fmt(o['peak_rss_gb'])} | {direct_s} | {chol} | {amg} | {sps} | "
                 f"{ratio_amg} | {ratio_sps} | {load} |")
         lines.append("")
+        for r in res["runs"]:
+            if r.get("note"):
+                lines.append(f"Row {r['n_elements']:,} ({r['field']}): {r['note']}.")
+                lines.append("")
         ge = res.get("growth_exponent", {})
         if ge:
             lines.append("Growth exponent of the time per iteration (least-squares slope of "
@@ -495,7 +504,9 @@ def markdown(results: list[dict]) -> str:
             lines.append("Relative compliance difference, first iteration of `ours` vs "
                          "CHOLMOD on the same system: " + "; ".join(checks) + ".")
             lines.append("")
-    lines.append("Times are wall-clock seconds unless marked CPU. Ratios compare wall solve "
+    lines.append("`CHOLMOD s/it` is the same iteration with the direct solver (analysis "
+                 "reused); `CHOLMOD solve` is analysis + factorisation + solve once. "
+                 "Times are wall-clock seconds unless marked CPU. Ratios compare wall solve "
                  "times in the same run (pyamg: set-up + solve; spsolve: one call). `load` "
                  "is the 1-minute load average before/after the size was run; when it is "
                  "above the number of cores the machine was shared with other jobs and wall "
@@ -531,6 +542,8 @@ def main(argv=None) -> int:
     parser.add_argument("--markdown", default=None, help="write the Markdown table here")
     parser.add_argument("--report", nargs="+", default=None,
                         help="only render existing JSON results to --markdown")
+    parser.add_argument("--notes", default=None,
+                        help="with --report: append this Markdown file (measured remarks)")
     parser.add_argument("--job", default=None, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
 
@@ -546,6 +559,8 @@ def main(argv=None) -> int:
     if args.report is not None:
         results = [json.loads(Path(p).read_text()) for p in args.report]
         text = markdown(results)
+        if args.notes:
+            text += "\n" + Path(args.notes).read_text()
         if args.markdown:
             Path(args.markdown).write_text(text)
         else:
