@@ -247,8 +247,10 @@ def _slope_held(
     for j in range(1, int(layers) + 1):
         if j >= n_layers:
             break
-        # layers k - j < 0 lie under the plate, which holds everything
-        held[j:] &= distance[:-j] <= j * reach + 1e-9
+        # layers k - j < 0 lie under the plate, which holds everything; the reach is
+        # rounded up to whole voxels, as a staircase can only step by whole voxels (a
+        # 63.43 degree wall steps one voxel every two layers: 1 voxel at j = 1)
+        held[j:] &= distance[:-j] <= math.ceil(j * reach - 1e-9) + 1e-9
     return held
 
 
@@ -389,10 +391,11 @@ def direction_masks(
     >>> int(masks.needs_support.sum()), int(masks.support_on_plate.sum())
     (4, 16)
     """
-    from filters.printability import supported_mask
+    from filters.printability import enforced_overhang_angle, supported_mask
 
     solid = solid_voxels(design)
-    angle = _check_angle(overhang_angle)
+    # judge slopes by the angle the voxel rule enforces, as the optimiser's filter does
+    angle = enforced_overhang_angle(_check_angle(overhang_angle))
     if float(element_size) <= 0:
         raise ValueError(f"element_size must be positive, got {element_size}")
     if float(tool_access) < 0:
