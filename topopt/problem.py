@@ -584,6 +584,34 @@ def _extent(grid: Grid) -> str:
     return " x ".join(f"[0, {s:g}]" for s in grid.size) + " in " + ",".join(AXES[: grid.dim])
 
 
+def read_toml(path: Path, *, what: str, error: type[ValueError] = ProblemError) -> dict:
+    """Parse a TOML file as data; every failure is one line ``PATH: what went wrong``.
+
+    Parameters
+    ----------
+    path : Path
+        The file.
+    what : str
+        What the file should be, for messages ("a TOML problem file").
+    error : type
+        The ``ValueError`` subclass to raise.
+    """
+    try:
+        text = path.read_bytes().decode("utf-8")
+    except FileNotFoundError:
+        raise error(f"{path}: file not found") from None
+    except IsADirectoryError:
+        raise error(f"{path}: is a folder, expected {what}") from None
+    except UnicodeDecodeError:
+        raise error(f"{path}: not a UTF-8 text file") from None
+    except OSError as exc:
+        raise error(f"{path}: cannot be read ({exc.strerror})") from None
+    try:
+        return tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise error(f"{path}: not valid TOML ({exc})") from None
+
+
 def load_problem(path: str | Path) -> Problem:
     """Read and validate a problem file.
 
@@ -598,20 +626,7 @@ def load_problem(path: str | Path) -> Problem:
         If the file cannot be read, is not valid TOML, or fails validation.
     """
     path = Path(path)
-    try:
-        text = path.read_bytes().decode("utf-8")
-    except FileNotFoundError:
-        raise ProblemError(f"{path}: file not found") from None
-    except IsADirectoryError:
-        raise ProblemError(f"{path}: is a folder, expected a TOML problem file") from None
-    except UnicodeDecodeError:
-        raise ProblemError(f"{path}: not a UTF-8 text file") from None
-    except OSError as exc:
-        raise ProblemError(f"{path}: cannot be read ({exc.strerror})") from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise ProblemError(f"{path}: not valid TOML ({exc})") from None
+    data = read_toml(path, what="a TOML problem file")
     return problem_from_dict(data, source=str(path))
 
 

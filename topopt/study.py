@@ -46,14 +46,13 @@ import json
 import math
 import os
 import re
-import tomllib
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from itertools import product
 from pathlib import Path
 from typing import Any
 
-from topopt.problem import Problem, ProblemError, load_problem, problem_from_dict, with_settings
+from topopt.problem import Problem, ProblemError, load_problem, problem_from_dict, read_toml, with_settings
 
 STUDY_KEYS = ("mode", "name", "problem", "set", "vary")
 MODES = ("product", "zip")
@@ -140,20 +139,7 @@ def load_study(study: str | Path | Mapping | Study) -> Study:
     if not isinstance(study, (str, Path)):
         raise TypeError(f"study: expected a file path or a table, got {type(study).__name__}")
     path = Path(study)
-    try:
-        text = path.read_bytes().decode("utf-8")
-    except FileNotFoundError:
-        raise StudyError(f"{path}: file not found") from None
-    except IsADirectoryError:
-        raise StudyError(f"{path}: is a folder, expected a TOML study file") from None
-    except UnicodeDecodeError:
-        raise StudyError(f"{path}: not a UTF-8 text file") from None
-    except OSError as exc:
-        raise StudyError(f"{path}: cannot be read ({exc.strerror})") from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise StudyError(f"{path}: not valid TOML ({exc})") from None
+    data = read_toml(path, what="a TOML study file", error=StudyError)
     return _study_from_dict(data, source=str(path), base_dir=path.parent)
 
 

@@ -13,17 +13,9 @@ from __future__ import annotations
 
 import argparse
 
+from topopt.commands import positive_int
+
 HELP = "optimise free and self-supporting for several build directions and compare"
-
-
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
-    return value
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -39,7 +31,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument(
         "--workers",
-        type=_positive_int,
+        type=positive_int,
         default=None,
         help="runs at the same time (default and upper limit: number of cores)",
     )

@@ -15,24 +15,16 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from topopt.commands import positive_int
+
 HELP = "run a parameter study over problem settings (in parallel, resumable)"
-
-
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
-    return value
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Options of ``buttress sweep``."""
     parser.add_argument("study", help="TOML study file")
     parser.add_argument("--out", required=True, help="study folder to write (or to resume)")
-    parser.add_argument("--workers", type=_positive_int, default=None,
+    parser.add_argument("--workers", type=positive_int, default=None,
                         help="cases run at the same time (default: number of cores)")
     parser.add_argument("--dask", action="store_true",
                         help="run on a local Dask cluster of --workers workers (loopback only)")
