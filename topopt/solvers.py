@@ -174,13 +174,14 @@ SOLVERS: dict[str, Callable[..., object]] = {
 }
 
 #: Free-dof counts above which "auto" picks multigrid-CG over the direct solver.
-#: Measured with benchmarks/iteration.py (benchmarks/results.md; 2-core AMD EPYC,
-#: one thread per job, CPU seconds of one full iteration, smooth cantilever field):
-#: 3D: multigrid 0.10 s vs CHOLMOD 0.14 s at 7,260 dofs, 0.41 s vs 0.96 s at 33,048,
-#: 2.5 s vs 20.8 s at 190,464, so multigrid from 10,000 dofs on (below that both take
-#: about 0.1 s and the direct solve is exact). 2D: equal (0.08 s) at 20,448 dofs,
-#: 0.18 s vs 0.22 s at 60,024, 0.53 s vs 0.98 s at 201,600: multigrid from 100,000.
-AUTO_MULTIGRID_DOFS = {2: 100_000, 3: 10_000}
+#: Measured with benchmarks/iteration.py (benchmarks/results.md, 2-core AMD EPYC, one
+#: full iteration on the smooth cantilever field, CHOLMOD with its analysis reused):
+#: 3D, quiet machine: multigrid 0.30 s vs CHOLMOD 0.78 s at 33,048 dofs, 1.4 s vs
+#: 12.2 s at 190,464; single-threaded under load: 0.10 s vs 0.14 s (CPU) at 7,260
+#: dofs. 2D, quiet: 0.05 s vs 0.07 s at 20,448 dofs, 0.13 s vs 0.25 s at 60,024, 0.34 s
+#: vs 0.94 s at 201,600; single-threaded under load: equal (0.08 s) at 20,448. Below
+#: these sizes both take about 0.1 s and the direct solve is exact.
+AUTO_MULTIGRID_DOFS = {2: 50_000, 3: 10_000}
 
 
 def choose_solver(*, grid: Grid, free_dofs: np.ndarray) -> str:
