@@ -24,6 +24,8 @@ lint: setup
 bench: setup
 	$(BIN)/python benchmarks/iteration.py --dims 2 --out benchmarks/results-2d.json
 	$(BIN)/python benchmarks/iteration.py --dims 3 --out benchmarks/results-3d.json
+	$(BIN)/python benchmarks/iteration.py --report benchmarks/results-2d.json benchmarks/results-3d.json \
+		--notes benchmarks/notes.md --markdown benchmarks/results.md
 
 clean:
 	rm -rf demo-results .pytest_cache
