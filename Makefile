@@ -9,8 +9,6 @@ setup:
 
 demo: setup
 	$(BIN)/buttress compare examples/wall-bracket-2d.toml --out demo-results/wall-bracket --overwrite
-	@echo "table: demo-results/wall-bracket/comparison.csv"
-	@echo "picture: demo-results/wall-bracket/comparison.png"
 
 test: setup
 	$(BIN)/python -m pytest -q

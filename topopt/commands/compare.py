@@ -56,12 +56,18 @@ def run(args: argparse.Namespace) -> int:
         overwrite=args.overwrite,
     )
     if not args.quiet:
-        print(f"{'direction':>9} {'compliance':>12} {'increase %':>10} {'unsupported':>11}")
+        print(f"{'direction':>9} {'compliance':>12} {'increase %':>10} {'unsupported':>11}"
+              f" {'of them keep-in':>15}")
         for r in rows:
-            unsupported = "-" if r["unsupported_elements"] is None else r["unsupported_elements"]
+            unsupported, keep_in = (
+                ("-", "-") if r["unsupported_elements"] is None
+                else (r["unsupported_elements"], r["unsupported_keep_in_elements"])
+            )
             print(
                 f"{r['direction']:>9} {r['compliance']:>12.6g} "
-                f"{r['compliance_increase_percent']:>+10.1f} {unsupported!s:>11}"
+                f"{r['compliance_increase_percent']:>+10.1f} {unsupported!s:>11} {keep_in!s:>15}"
             )
+        print("keep-in regions print whatever lies below them; their unsupported elements "
+              "need support structures")
         print(f"table: {args.out}/comparison.csv, picture: {args.out}/comparison.png")
     return 0
