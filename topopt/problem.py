@@ -174,7 +174,7 @@ class _Reader:
                 raise self.fail(key, "missing table; expected a [" + key + "] table")
             return {}
         if not isinstance(value, Mapping):
-            raise self.fail(key, f"expected a table, got {_kind(value)}")
+            raise self.fail(key, f"expected a table, got {describe_value(value)}")
         self.no_unknown(value, key, allowed)
         return dict(value)
 
@@ -192,7 +192,7 @@ class _Reader:
             return default
         v = table[key]
         if isinstance(v, bool) or not isinstance(v, (int, float)):
-            raise self.fail(name, f"expected a {'whole number' if integer else 'number'}, got {_kind(v)}")
+            raise self.fail(name, f"expected a {'whole number' if integer else 'number'}, got {describe_value(v)}")
         if integer and not isinstance(v, int):
             raise self.fail(name, f"expected a whole number, got {v!r}")
         if not math.isfinite(v):
@@ -214,7 +214,7 @@ class _Reader:
             return default
         v = table[key]
         if not isinstance(v, str):
-            raise self.fail(name, f"expected a string, got {_kind(v)}")
+            raise self.fail(name, f"expected a string, got {describe_value(v)}")
         if choices is not None and v not in choices:
             raise self.fail(name, f"expected one of {', '.join(repr(c) for c in choices)}, got {v!r}")
         return v
@@ -223,7 +223,7 @@ class _Reader:
         if not isinstance(value, list) or any(
             isinstance(v, bool) or not isinstance(v, (int, float)) for v in value
         ):
-            raise self.fail(name, f"expected a list of numbers, got {_kind(value)}")
+            raise self.fail(name, f"expected a list of numbers, got {describe_value(value)}")
         if length is not None and len(value) != length:
             raise self.fail(name, f"expected {length} numbers, got {len(value)}")
         if not all(math.isfinite(v) for v in value):
@@ -240,7 +240,8 @@ def _get(data: Mapping, key: str) -> Any:
     return value
 
 
-def _kind(value: Any) -> str:
+def describe_value(value: Any) -> str:
+    """Short description of a parsed TOML value for error messages ("a list", ...)."""
     if isinstance(value, bool):
         return f"a boolean ({str(value).lower()})"
     if isinstance(value, Mapping):
@@ -254,7 +255,7 @@ def _kind(value: Any) -> str:
 
 def _region(r: _Reader, value: Any, name: str, dim: int) -> dict:
     if not isinstance(value, Mapping):
-        raise r.fail(name, f"expected a table such as {{ x = [0.0, 0.0] }}, got {_kind(value)}")
+        raise r.fail(name, f"expected a table such as {{ x = [0.0, 0.0] }}, got {describe_value(value)}")
     allowed = set(AXES[:dim]) | {"center", "radius"} | ({"axis"} if dim == 3 else set())
     r.no_unknown(value, name, allowed)
     region: dict[str, Any] = {}
@@ -283,7 +284,7 @@ def _region(r: _Reader, value: Any, name: str, dim: int) -> dict:
 def _list_of_tables(r: _Reader, data: Mapping, key: str) -> list[Mapping]:
     value = data.get(key, [])
     if not isinstance(value, list) or not all(isinstance(v, Mapping) for v in value):
-        raise r.fail(key, f"expected an array of tables ([[{key}]]), got {_kind(value)}")
+        raise r.fail(key, f"expected an array of tables ([[{key}]]), got {describe_value(value)}")
     return value
 
 

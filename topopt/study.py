@@ -52,7 +52,15 @@ from itertools import product
 from pathlib import Path
 from typing import Any
 
-from topopt.problem import Problem, ProblemError, load_problem, problem_from_dict, read_toml, with_settings
+from topopt.problem import (
+    Problem,
+    ProblemError,
+    describe_value,
+    load_problem,
+    problem_from_dict,
+    read_toml,
+    with_settings,
+)
 
 STUDY_KEYS = ("mode", "name", "problem", "set", "vary")
 MODES = ("product", "zip")
@@ -152,11 +160,11 @@ def _study_from_dict(data: Mapping, *, source: str, base_dir: Path) -> Study:
             raise fail(key, f"unknown key; expected one of {', '.join(STUDY_KEYS)}")
     name = data.get("name", Path(source).stem)
     if not isinstance(name, str):
-        raise fail("name", f"expected a string, got {_kind(name)}")
+        raise fail("name", f"expected a string, got {describe_value(name)}")
     mode = data.get("mode", "product")
     if mode not in MODES:
         choices = ", ".join(repr(m) for m in MODES)
-        raise fail("mode", f"expected one of {choices}, got {_kind(mode)}")
+        raise fail("mode", f"expected one of {choices}, got {describe_value(mode)}")
 
     raw_problem = data.get("problem")
     if isinstance(raw_problem, str):
@@ -166,11 +174,11 @@ def _study_from_dict(data: Mapping, *, source: str, base_dir: Path) -> Study:
     elif raw_problem is None:
         raise fail("problem", "missing; expected the path of a problem file")
     else:
-        raise fail("problem", f"expected the path of a problem file, got {_kind(raw_problem)}")
+        raise fail("problem", f"expected the path of a problem file, got {describe_value(raw_problem)}")
 
     fixed = data.get("set", {})
     if not isinstance(fixed, Mapping):
-        raise fail("set", f"expected a table of dotted problem keys, got {_kind(fixed)}")
+        raise fail("set", f"expected a table of dotted problem keys, got {describe_value(fixed)}")
     fixed = _flatten(fixed, leaf=lambda v: not isinstance(v, Mapping))
     if fixed:
         try:
@@ -182,13 +190,13 @@ def _study_from_dict(data: Mapping, *, source: str, base_dir: Path) -> Study:
     if vary_raw is None:
         raise fail("vary", "missing; expected a [vary] table of dotted keys and lists of values")
     if not isinstance(vary_raw, Mapping):
-        raise fail("vary", f"expected a table, got {_kind(vary_raw)}")
+        raise fail("vary", f"expected a table, got {describe_value(vary_raw)}")
     vary = _flatten(vary_raw, leaf=lambda v: not isinstance(v, Mapping))
     if not vary:
         raise fail("vary", "empty; expected at least one dotted key with a list of values")
     for key, values in vary.items():
         if not isinstance(values, list):
-            raise fail(f"vary.{key}", f"expected a list of values, got {_kind(values)}")
+            raise fail(f"vary.{key}", f"expected a list of values, got {describe_value(values)}")
         if not values:
             raise fail(f"vary.{key}", "expected at least one value, got an empty list")
         if mode == "product":  # paired (zip) lists may repeat a value
@@ -298,16 +306,6 @@ def _display(value: Any) -> str:
 
 def _strip_source(message: str, source: str) -> str:
     return message[len(source) + 2:] if message.startswith(source + ": ") else message
-
-
-def _kind(value: Any) -> str:
-    if isinstance(value, bool):
-        return f"a boolean ({str(value).lower()})"
-    if isinstance(value, Mapping):
-        return "a table"
-    if isinstance(value, list):
-        return "a list"
-    return repr(value)
 
 
 # ---------------------------------------------------------------------------- running
