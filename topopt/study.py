@@ -322,19 +322,17 @@ def run_case(problem_table: Mapping, *, source: str, single_thread: bool = True)
     --------
     >>> # run_case(case.problem.source, source=case.problem.path)["result"].compliance
     """
+    import contextlib
+
+    from threadpoolctl import threadpool_limits
+
+    from topopt.driver import optimize
+
     try:
         problem = problem_from_dict(problem_table, source=source)
-        if not single_thread:
-            from topopt.driver import optimize
-
-            return {"result": optimize(problem)}
         # Several cases run side by side: one BLAS / OpenMP thread each, or they fight
-        # over the cores.
-        from threadpoolctl import threadpool_limits
-
-        from topopt.driver import optimize
-
-        with threadpool_limits(limits=1):
+        # over the cores (threadpool_limits takes effect when created, so create it here).
+        with threadpool_limits(limits=1) if single_thread else contextlib.nullcontext():
             return {"result": optimize(problem)}
     except Exception as exc:  # noqa: BLE001 - a failed case must not stop the study
         return {"error": _one_line(exc)}
