@@ -23,8 +23,6 @@ from topopt import robust
 from topopt.objective import ComplianceModel, grey_level, volume_fraction
 from topopt.optimizers import MMAComplianceUpdate, oc_update
 
-HISTORY_COLUMNS = ("iteration", "compliance", "volume_fraction", "change", "grey_level", "elapsed_s")
-
 
 @dataclass(frozen=True, eq=False)
 class Result:

@@ -232,28 +232,24 @@ def blas_info() -> str:
 
 def cholmod_blas() -> str:
     """Which BLAS library the CHOLMOD binding is linked to (from the shared-library map)."""
+    import os
+    import subprocess
+
     try:
         import sksparse.cholmod as ch
     except ImportError:
         return "not installed"
-    import subprocess
-
     try:
         out = subprocess.run(["ldd", ch.__file__], capture_output=True, text=True,
                              timeout=10).stdout
     except (OSError, subprocess.SubprocessError):
         return "unknown"
     # ldd lists libcholmod's own dependencies too, so the BLAS it resolves to shows here.
-    names = [line.split()[0] for line in out.splitlines() if "blas" in line.lower()]
-    resolved = []
-    import os
-
-    for line in out.splitlines():
-        if "blas" in line.lower() and "=>" in line:
-            target = line.split("=>")[1].split("(")[0].strip()
-            resolved.append(os.path.realpath(target))
+    blas_lines = [line for line in out.splitlines() if "blas" in line.lower()]
+    resolved = {os.path.realpath(line.split("=>")[1].split("(")[0].strip())
+                for line in blas_lines if "=>" in line}
     if any("openblas" in r for r in resolved):
         return "OpenBLAS"
     if resolved:
-        return "reference BLAS (" + ", ".join(sorted(set(resolved))) + ")"
-    return ", ".join(names) or "unknown"
+        return "reference BLAS (" + ", ".join(sorted(resolved)) + ")"
+    return ", ".join(line.split()[0] for line in blas_lines) or "unknown"
