@@ -57,8 +57,10 @@ def build_filter_chain(problem, *, eta: float | None = None) -> FilterChain:
     if etas:
         start = robust.projection_settings(problem).beta_start
         default_eta = etas[robust.BLUEPRINT] if len(etas) > 1 else etas[0]
+        preserve = robust.projection_settings(problem).preserve_volume
         links.append(heaviside_projection(grid.shape, beta=start,
-                                          eta=default_eta if eta is None else eta))
+                                          eta=default_eta if eta is None else eta,
+                                          preserve_volume=preserve))
     links.append(FixedValues(problem.passive_solid, problem.passive_void))
     # -- printability link (appended here when build.direction != "none") --
     if problem.build.direction != "none":
@@ -208,6 +210,9 @@ def optimize(
                 row["compliance_dilated"] = compliances[2]
             if schedule is not None:
                 row["beta"] = schedule.beta
+                for link in chain.links:
+                    if isinstance(link, HeavisideProjection) and link.preserve_volume:
+                        row["eta"] = link.eta  # the threshold found at this iteration
             history.append(row)
             if bar is not None:
                 bar.update(1)

@@ -65,6 +65,8 @@ class Projection:
     eta: float = 0.5
     every: int = 40
     robust_delta: float = 0.25
+    stall_change: float = 0.0
+    preserve_volume: bool = False
 
 
 @dataclass(frozen=True)
@@ -217,6 +219,14 @@ class _Reader:
             raise self.fail(name, f"expected a string, got {describe_value(v)}")
         if choices is not None and v not in choices:
             raise self.fail(name, f"expected one of {', '.join(repr(c) for c in choices)}, got {v!r}")
+        return v
+
+    def flag(self, table: Mapping, key: str, name: str, *, default: bool) -> bool:
+        if key not in table:
+            return default
+        v = table[key]
+        if not isinstance(v, bool):
+            raise self.fail(name, f"expected true or false, got {describe_value(v)}")
         return v
 
     def numbers(self, value: Any, name: str, *, length: int | None = None) -> list[float]:
@@ -470,7 +480,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
     if "projection" in opt:
         # looked up through the dotted name so errors name optimize.projection.<key>
         pt = r.table({"optimize": opt}, "optimize.projection",
-                     {"beta_start", "beta_max", "eta", "every", "robust_delta"})
+                     set(Projection.__dataclass_fields__))
         projection = Projection(
             beta_start=r.number(pt, "beta_start", "optimize.projection.beta_start", default=1.0,
                                 low=0.0, low_open=True),
@@ -481,9 +491,16 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
             every=r.number(pt, "every", "optimize.projection.every", default=40, low=1, integer=True),
             robust_delta=r.number(pt, "robust_delta", "optimize.projection.robust_delta",
                                   default=0.25, low=0.0, high=0.5, low_open=True, high_open=True),
+            stall_change=r.number(pt, "stall_change", "optimize.projection.stall_change",
+                                  default=0.0, low=0.0, high=1.0),
+            preserve_volume=r.flag(pt, "preserve_volume", "optimize.projection.preserve_volume",
+                                   default=False),
         )
         if projection.beta_max < projection.beta_start:
             raise r.fail("optimize.projection.beta_max", "expected beta_max >= beta_start")
+        if projection.preserve_volume and "eta" in pt:
+            raise r.fail("optimize.projection.eta",
+                         "is chosen at every iteration with preserve_volume = true; remove eta")
     optimize = OptimizeSettings(
         volume_fraction=vf,
         filter_radius=r.number(opt, "filter_radius", "optimize.filter_radius", default=1.5 * h,
@@ -511,6 +528,12 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         if "filter_radius" in opt:
             raise r.fail("optimize.min_member_size",
                          "sets the filter radius itself; remove optimize.filter_radius")
+        if projection is not None and projection.preserve_volume:
+            raise r.fail("optimize.projection.preserve_volume",
+                         "the robust formulation (min_member_size) fixes its thresholds; remove it")
+        if projection is not None and "eta" in opt["projection"]:
+            raise r.fail("optimize.projection.eta",
+                         "the robust formulation (min_member_size) uses 0.5 +- robust_delta; remove eta")
         if optimize.min_member_size < 2.0 * h:
             raise r.fail("optimize.min_member_size",
                          f"expected at least two elements ({2.0 * h:g}), got {optimize.min_member_size!r}")

@@ -74,5 +74,6 @@ def beta_schedule(problem) -> BetaContinuation | None:
     if settings is None:
         return None
     return BetaContinuation(
-        beta_start=settings.beta_start, beta_max=settings.beta_max, every=settings.every
+        beta_start=settings.beta_start, beta_max=settings.beta_max, every=settings.every,
+        stagnation=settings.stall_change,
     )

@@ -70,6 +70,10 @@ def test_projection_keys_are_read():
         0.2,
     )
     assert p.optimize.method == "mma"
+    assert (proj.stall_change, proj.preserve_volume) == (0.0, False)  # defaults
+    data["optimize"]["projection"] = dict(stall_change=0.02, preserve_volume=True)
+    proj = problem_from_dict(data, source="t.toml").optimize.projection
+    assert (proj.stall_change, proj.preserve_volume) == (0.02, True)
 
 
 @pytest.mark.parametrize(
@@ -84,6 +88,13 @@ def test_projection_keys_are_read():
         (dict(method="mma", min_member_size=4.0), (), "remove optimize.filter_radius"),
         (dict(method="mma", min_member_size=1.5), ("filter_radius",), "at least two elements"),
         (dict(method="newton"), (), "optimize.method"),
+        (dict(projection=dict(stall_change=-0.1)), (), "optimize.projection.stall_change"),
+        (dict(projection=dict(preserve_volume="yes")), (), "expected true or false"),
+        (dict(projection=dict(preserve_volume=True, eta=0.4)), (), "remove eta"),
+        (dict(method="mma", min_member_size=4.0, projection=dict(preserve_volume=True)),
+         ("filter_radius",), "optimize.projection.preserve_volume"),
+        (dict(method="mma", min_member_size=4.0, projection=dict(eta=0.4)),
+         ("filter_radius",), "robust_delta; remove eta"),
     ],
 )
 def test_bad_projection_settings_give_one_line(change, drop, message):
@@ -165,6 +176,41 @@ def test_not_converged_before_the_final_beta():
     assert result.iterations == 11  # 5 at beta 1, 5 at beta 2, first at beta 4 converges
 
 
+def test_stall_change_doubles_beta_before_every():
+    # beta doubles once the largest design change drops below stall_change (after at
+    # least 5 iterations at one beta), long before every = 1000 iterations
+    data = _coarse_mbb(
+        method="mma", projection=dict(beta_start=1.0, beta_max=8.0, every=1000, stall_change=0.05)
+    )
+    result = optimize(problem_from_dict(data, source="t.toml"))
+    betas = [row["beta"] for row in result.history]
+    assert betas[-1] == 8.0 and result.iterations < 120
+    for k in range(1, len(betas)):
+        if betas[k] > betas[k - 1]:
+            assert result.history[k - 1]["change"] < 0.05
+    plain = optimize(problem_from_dict(_coarse_mbb(method="mma", projection=dict(every=1000)),
+                                       source="t.toml"))
+    assert {row["beta"] for row in plain.history} == {1.0}
+
+
+def test_preserve_volume_keeps_the_projected_mean_at_the_filtered_mean():
+    # Wang, Lazarov & Sigmund 2011, sec. 3: eta chosen so that projection keeps the volume
+    data = _coarse_mbb(
+        method="oc", projection=dict(beta_start=1.0, beta_max=16.0, every=10, preserve_volume=True)
+    )
+    data["optimize"]["max_iterations"] = 60
+    p = problem_from_dict(data, source="t.toml")
+    result = optimize(p)
+    etas = [row["eta"] for row in result.history]
+    assert len(set(etas)) > 10 and all(0.0 < e < 1.0 for e in etas)
+    chain = build_filter_chain(p)
+    chain.links[1].beta = 16.0
+    filtered = chain.links[0].forward(result.design)
+    projected = chain.links[1].forward(filtered)
+    assert projected.mean() == pytest.approx(filtered.mean(), abs=1e-8)
+    assert result.volume_fraction <= 0.5 + 2e-3
+
+
 def test_robust_run_orders_the_three_designs_and_reports_sizes():
     data = _coarse_mbb(
         method="mma",
@@ -205,25 +251,27 @@ def test_resume_with_mma_and_projection_repeats_the_uninterrupted_run():
 
 @pytest.mark.slow
 def test_mma_mbb_against_oc():
-    # issue 4 asks for the same final compliance as OC within 1 %. Measured: OC 218.80
-    # (126 iterations), MMA 210.66 (123 iterations): a different, stiffer local optimum.
-    # MMA restarted from OC's final design moves on to 212.3, so OC had stalled rather
-    # than MMA gone astray. Checked here: MMA no worse than OC + 1 % and volume met.
-    oc = optimize(load_problem(MBB))
-    mma = optimize(problem_from_dict(_variant(MBB, optimize=dict(method="mma")), source="m"))
+    # issue 4: on the MBB beam MMA ends at the same compliance as OC within 1 %, with the
+    # volume constraint met. Both run to a design change of 0.001: at the usual 0.01 OC
+    # stops at 217.8 while its layout is still creeping towards MMA's (OC needs ~1500
+    # iterations to finish the creep; see oc_update). Measured: OC 210.86 (1482 it),
+    # MMA 210.66 (137 it).
+    tight = dict(change_tolerance=0.001, max_iterations=3000)
+    oc = optimize(problem_from_dict(_variant(MBB, optimize=tight), source="m"))
+    mma = optimize(problem_from_dict(_variant(MBB, optimize=dict(method="mma", **tight)), source="m"))
     print(
         f"MBB: OC {oc.compliance:.2f} ({oc.iterations} it), "
         f"MMA {mma.compliance:.2f} ({mma.iterations} it)"
     )
-    assert mma.converged
+    assert oc.converged and mma.converged
     assert abs(mma.volume_fraction - 0.5) < 1e-4
-    assert mma.compliance <= 1.01 * oc.compliance
+    assert mma.compliance == pytest.approx(oc.compliance, rel=0.01)
 
 
 @pytest.mark.slow
 def test_mma_and_oc_agree_where_they_find_the_same_layout():
     # With filter radius 2.5 (instead of 1.5) both optimisers end in the same layout
-    # (checked by eye on the pictures). Measured: OC 237.32 (162 it), MMA 237.17 (104 it).
+    # (checked by eye on the pictures). Measured: OC 237.54 (164 it), MMA 237.17 (104 it).
     data = _variant(MBB, optimize=dict(filter_radius=2.5))
     oc = optimize(problem_from_dict(data, source="m"))
     data["optimize"]["method"] = "mma"
