@@ -302,18 +302,19 @@ def test_projection_ends_nearly_black_and_white(path, method):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("size", [3.0, 5.0])
-def test_robust_mbb_meets_the_minimum_member_size(size):
+@pytest.mark.parametrize("size, beta_max", [(3.0, 32.0), (5.0, 64.0)])
+def test_robust_mbb_meets_the_minimum_member_size(size, beta_max):
     # issue 4: the measured smallest solid member is at least the requested size,
-    # within one element
+    # within one element. Size 5 needs beta_max 64 to end crisp on this coarse grid
+    # (measured grey 6.2 % at 32 after 400 iterations, 1.0 % at 64).
     data = _variant(
         MBB,
         drop=("filter_radius",),
         optimize=dict(
             method="mma",
             min_member_size=size,
-            max_iterations=400,
-            projection=dict(beta_start=1.0, beta_max=32.0, every=40),
+            max_iterations=500,
+            projection=dict(beta_start=1.0, beta_max=beta_max, every=40),
         ),
     )
     p = problem_from_dict(data, source="mbb")
@@ -324,6 +325,7 @@ def test_robust_mbb_meets_the_minimum_member_size(size):
         f"c {result.compliance:.4g}, {result.iterations} it"
     )
     assert sizes["solid"] >= size - 1.0
+    assert result.converged and result.grey_level < 0.02
 
 
 @pytest.mark.slow
