@@ -571,6 +571,22 @@ def _prepare(solid, direction, overhang_angle):
     return arr, axis, sign, _offsets(arr.ndim, rule.reach), rule.rise
 
 
+def _layer_sweep(solid, direction, overhang_angle, *, printed_only: bool) -> np.ndarray:
+    """Solid elements with support below, layer by layer from the plate.
+
+    ``printed_only`` counts as support only what itself printed (the printable part);
+    otherwise any solid element below counts (the supported mask).
+    """
+    arr, axis, sign, offsets, rise = _prepare(solid, direction, overhang_angle)
+    layers = _to_layers(arr, axis, sign)
+    out = np.zeros_like(layers)
+    if layers.shape[0]:
+        out[0] = layers[0]
+    for ly in range(1, layers.shape[0]):
+        out[ly] = layers[ly] & _has_support(out if printed_only else layers, ly, offsets, rise)
+    return _from_layers(out, axis, sign, arr.ndim).copy()
+
+
 def supported_mask(
     solid: np.ndarray, *, direction: str, overhang_angle: float = 45.0
 ) -> np.ndarray:
@@ -596,14 +612,7 @@ def supported_mask(
     >>> supported_mask(s, direction="+y").astype(int).tolist()
     [[1, 1, 0], [0, 0, 0], [0, 0, 0]]
     """
-    arr, axis, sign, offsets, rise = _prepare(solid, direction, overhang_angle)
-    layers = _to_layers(arr, axis, sign)
-    out = np.zeros_like(layers)
-    if layers.shape[0]:
-        out[0] = layers[0]
-    for ly in range(1, layers.shape[0]):
-        out[ly] = layers[ly] & _has_support(layers, ly, offsets, rise)
-    return _from_layers(out, axis, sign, arr.ndim).copy()
+    return _layer_sweep(solid, direction, overhang_angle, printed_only=False)
 
 
 def printable_part(
@@ -634,14 +643,7 @@ def printable_part(
     >>> printable_part(s, direction="+y").astype(int).tolist()
     [[1, 0, 0, 0], [0, 0, 0, 0], [0, 0, 0, 0]]
     """
-    arr, axis, sign, offsets, rise = _prepare(solid, direction, overhang_angle)
-    layers = _to_layers(arr, axis, sign)
-    out = np.zeros_like(layers)
-    if layers.shape[0]:
-        out[0] = layers[0]
-    for ly in range(1, layers.shape[0]):
-        out[ly] = layers[ly] & _has_support(out, ly, offsets, rise)
-    return _from_layers(out, axis, sign, arr.ndim).copy()
+    return _layer_sweep(solid, direction, overhang_angle, printed_only=True)
 
 
 def unsupported_count(solid: np.ndarray, *, direction: str, overhang_angle: float = 45.0) -> int:
