@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import os
+import re
 import sys
 
 #: Subcommand name -> module implementing it.
@@ -66,9 +67,31 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+_DIRECTION_LIST = re.compile(r"^([+-][xyz]|none)(,([+-][xyz]|none))*$")
+
+
+def _attach_direction_lists(argv: list[str]) -> list[str]:
+    """Write ``--directions -x,+y`` as ``--directions=-x,+y``.
+
+    argparse reads a value that starts with '-' as an option of its own, so a direction
+    list that starts with a minus direction would be rejected unless joined with '='.
+    """
+    out: list[str] = []
+    i = 0
+    while i < len(argv):
+        if argv[i] == "--directions" and i + 1 < len(argv) and _DIRECTION_LIST.match(argv[i + 1]):
+            out.append(f"--directions={argv[i + 1]}")
+            i += 2
+            continue
+        out.append(argv[i])
+        i += 1
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
     parser = build_parser()
+    argv = _attach_direction_lists(list(sys.argv[1:] if argv is None else argv))
     args = parser.parse_args(argv)
     if not getattr(args, "_run", None):
         parser.print_help()

@@ -284,7 +284,8 @@ def test_command_writes_comparison(tmp_path, capsys):
             str(problem),
             "--out",
             str(out),
-            "--directions=-y",  # a list starting with "-" needs the "=" form
+            "--directions",  # a list starting with "-" (argparse alone would reject it)
+            "-y",
             "--workers",
             "1",
             "--quiet",
@@ -292,6 +293,17 @@ def test_command_writes_comparison(tmp_path, capsys):
         ]
     )
     assert code == 0 and "-y" in (out / "comparison.csv").read_text()
+
+
+def test_direction_lists_starting_with_minus_are_attached_to_their_option():
+    from topopt.cli import _attach_direction_lists
+
+    assert _attach_direction_lists(["compare", "p.toml", "--directions", "-x,+y", "--quiet"]) == [
+        "compare", "p.toml", "--directions=-x,+y", "--quiet"]
+    assert _attach_direction_lists(["inspect", "d", "--directions", "none,-z"])[-1] == "--directions=none,-z"
+    # anything else is left for argparse to judge
+    assert _attach_direction_lists(["compare", "--directions", "--quiet"]) == ["compare", "--directions", "--quiet"]
+    assert _attach_direction_lists(["compare", "--directions=-x"]) == ["compare", "--directions=-x"]
 
 
 def test_command_bad_input_is_one_line(tmp_path, capsys):

@@ -26,8 +26,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "--directions",
         default=None,
         metavar="LIST",
-        help="comma-separated build directions, e.g. --directions=-x,+y (write it with '=' "
-        "when the list starts with '-'; default: all axis directions)",
+        help="comma-separated build directions, e.g. --directions -x,+y "
+        "(default: all axis directions)",
     )
     parser.add_argument(
         "--workers",

@@ -36,7 +36,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "values (default: the results folder's problem.toml)")
     parser.add_argument("--directions", default=None, metavar="LIST",
                         help="candidate build directions, comma-separated, e.g. "
-                             "--directions=+z,-z,+x (default: all axis directions)")
+                             "--directions -z,+z,+x (default: all axis directions)")
     parser.add_argument("--element-size", type=float, default=None, metavar="H",
                         help="voxel size for an array without a problem file, or for "
                              "voxelising an STL")
@@ -108,7 +108,7 @@ def parse_directions(text: str | None, ndim: int) -> list[str] | None:
         return None
     out = [d.strip() for d in str(text).split(",") if d.strip()]
     if not out:
-        raise ValueError("--directions: give at least one direction, e.g. --directions=+z,-z")
+        raise ValueError("--directions: give at least one direction, e.g. --directions +z,-z")
     allowed = all_directions(ndim)
     for d in out:
         if d not in allowed:
