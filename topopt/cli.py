@@ -10,7 +10,6 @@ from __future__ import annotations
 import argparse
 import importlib
 import os
-import re
 import sys
 
 #: Subcommand name -> module implementing it.
@@ -67,23 +66,26 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-_DIRECTION_LIST = re.compile(r"^([+-][xyz]|none)(,([+-][xyz]|none))*$")
-
-
 def _attach_direction_lists(argv: list[str]) -> list[str]:
     """Write ``--directions -x,+y`` as ``--directions=-x,+y``.
 
     argparse reads a value that starts with '-' as an option of its own, so a direction
     list that starts with a minus direction would be rejected unless joined with '='.
+    The next word is attached whenever it is not an option (``--...``) or ``-h``; the
+    command then judges it, so a misspelt list gets the command's own message.
     """
     out: list[str] = []
     i = 0
     while i < len(argv):
-        if argv[i] == "--directions" and i + 1 < len(argv) and _DIRECTION_LIST.match(argv[i + 1]):
-            out.append(f"--directions={argv[i + 1]}")
-            i += 2
-            continue
-        out.append(argv[i])
+        word = argv[i]
+        takes_list = len(word) >= 4 and "--directions".startswith(word)  # argparse allows prefixes
+        if takes_list and i + 1 < len(argv):
+            value = argv[i + 1]
+            if value.startswith("-") and not value.startswith("--") and value != "-h":
+                out.append(f"--directions={value}")
+                i += 2
+                continue
+        out.append(word)
         i += 1
     return out
 

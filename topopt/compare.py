@@ -99,9 +99,9 @@ def _run_one(source: dict, path: str, folder: str) -> dict:
 
 
 def _run_one_single_thread(source: dict, path: str, folder: str) -> dict:
-    from threadpoolctl import threadpool_limits
+    from topopt.parallel import single_thread
 
-    with threadpool_limits(limits=1):
+    with single_thread():
         return _run_one(source, path, folder)
 
 
@@ -184,16 +184,14 @@ def compare(
         for d, source, path, folder in jobs:
             done(d, _run_one(source, path, folder))
     else:
-        import multiprocessing
-        from concurrent.futures import ProcessPoolExecutor, as_completed
+        from topopt.parallel import process_map
 
-        # "spawn": a fresh interpreter per worker; forking a process whose BLAS already
-        # started threads can hang.
-        context = multiprocessing.get_context("spawn")
-        with ProcessPoolExecutor(max_workers=n_workers, mp_context=context) as pool:
-            futures = {pool.submit(_run_one_single_thread, *job[1:]): job[0] for job in jobs}
-            for future in as_completed(futures):
-                done(futures[future], future.result())
+        for d, summary, error in process_map(
+            _run_one_single_thread, [(job[0], job[1:], {}) for job in jobs], workers=n_workers
+        ):
+            if error is not None:
+                raise error
+            done(d, summary)
 
     densities = {d: _load_density(out / folder_name(d)) for d in runs}
     rows = comparison_rows(runs, summaries, densities, problem)

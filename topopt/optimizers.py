@@ -30,7 +30,8 @@ def oc_update(
     21:120-127, 2001) because 0 is a fixed point of the multiplicative update: a variable
     that reaches 0 can never come back. Measured on the half MBB beam (tolerance 0.001):
     with a floor of 0, OC stalled at compliance 218.1, unable to put material back where
-    it had once removed it; with 0.001 it went on to 210.9, next to MMA's 210.7.
+    it had once removed it; with 0.001 it went on to 210.9, next to MMA's 210.7. A
+    variable below the floor is lifted to it even if that is more than ``move``.
 
     Parameters
     ----------

@@ -492,7 +492,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
             robust_delta=r.number(pt, "robust_delta", "optimize.projection.robust_delta",
                                   default=0.25, low=0.0, high=0.5, low_open=True, high_open=True),
             stall_change=r.number(pt, "stall_change", "optimize.projection.stall_change",
-                                  default=0.0, low=0.0, high=1.0),
+                                  default=0.0, low=0.0, high=1.0, high_open=True),
             preserve_volume=r.flag(pt, "preserve_volume", "optimize.projection.preserve_volume",
                                    default=False),
         )
@@ -531,9 +531,6 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         if projection is not None and projection.preserve_volume:
             raise r.fail("optimize.projection.preserve_volume",
                          "the robust formulation (min_member_size) fixes its thresholds; remove it")
-        if projection is not None and "eta" in opt["projection"]:
-            raise r.fail("optimize.projection.eta",
-                         "the robust formulation (min_member_size) uses 0.5 +- robust_delta; remove eta")
         if optimize.min_member_size < 2.0 * h:
             raise r.fail("optimize.min_member_size",
                          f"expected at least two elements ({2.0 * h:g}), got {optimize.min_member_size!r}")

@@ -324,15 +324,14 @@ def run_case(problem_table: Mapping, *, source: str, single_thread: bool = True)
     """
     import contextlib
 
-    from threadpoolctl import threadpool_limits
-
     from topopt.driver import optimize
+    from topopt.parallel import single_thread as one_thread
 
     try:
         problem = problem_from_dict(problem_table, source=source)
         # Several cases run side by side: one BLAS / OpenMP thread each, or they fight
-        # over the cores (threadpool_limits takes effect when created, so create it here).
-        with threadpool_limits(limits=1) if single_thread else contextlib.nullcontext():
+        # over the cores (the limit takes effect when created, so create it here).
+        with one_thread() if single_thread else contextlib.nullcontext():
             return {"result": optimize(problem)}
     except Exception as exc:  # noqa: BLE001 - a failed case must not stop the study
         return {"error": _one_line(exc)}
@@ -349,32 +348,15 @@ def _run_inline(cases: list[Case]) -> Iterator[tuple[Case, dict]]:
 
 
 def _run_pool(cases: list[Case], workers: int) -> Iterator[tuple[Case, dict]]:
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor, as_completed
+    from topopt.parallel import process_map
 
-    # "spawn": a fresh interpreter per worker; forking a process that already holds
-    # BLAS / numba thread pools is not safe.
-    pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
-    try:
-        futures = {
-            pool.submit(run_case, c.problem.source, source=c.problem.path, single_thread=True): c
-            for c in cases
-        }
-        for future in as_completed(futures):
-            try:
-                payload = future.result()
-            except Exception as exc:  # noqa: BLE001 - e.g. a worker killed by the system
-                payload = {"error": f"worker failed: {_one_line(exc)}"}
-            yield futures[future], payload
-    except BaseException:
-        # Interrupted (Ctrl-C, or the caller stopped): end the running cases now rather
-        # than wait for them; their folders have no summary.json, so a rerun redoes them.
-        # ProcessPoolExecutor has no public way to stop busy workers before Python 3.14.
-        for process in list(getattr(pool, "_processes", {}).values()):
-            process.terminate()
-        pool.shutdown(wait=False, cancel_futures=True)
-        raise
-    pool.shutdown(wait=True)
+    # an interrupted study ends its running cases at once; their folders have no
+    # summary.json, so a rerun redoes them
+    jobs = [(c, (c.problem.source,), {"source": c.problem.path, "single_thread": True}) for c in cases]
+    for case, payload, error in process_map(run_case, jobs, workers=workers):
+        if error is not None:  # e.g. a worker killed by the system
+            payload = {"error": f"worker failed: {_one_line(error)}"}
+        yield case, payload
 
 
 def _run_dask(

@@ -300,10 +300,21 @@ def test_direction_lists_starting_with_minus_are_attached_to_their_option():
 
     assert _attach_direction_lists(["compare", "p.toml", "--directions", "-x,+y", "--quiet"]) == [
         "compare", "p.toml", "--directions=-x,+y", "--quiet"]
-    assert _attach_direction_lists(["inspect", "d", "--directions", "none,-z"])[-1] == "--directions=none,-z"
-    # anything else is left for argparse to judge
+    assert _attach_direction_lists(["inspect", "d", "--directions", "-z,none"])[-1] == "--directions=-z,none"
+    assert _attach_direction_lists(["inspect", "d", "--directions", "none,-z"])[-1] == "none,-z"  # argparse copes
+    assert _attach_direction_lists(["compare", "--direction", "-X,"])[-1] == "--directions=-X,"
+    # options, help and the '=' form are left for argparse
     assert _attach_direction_lists(["compare", "--directions", "--quiet"]) == ["compare", "--directions", "--quiet"]
+    assert _attach_direction_lists(["compare", "--directions", "-h"]) == ["compare", "--directions", "-h"]
     assert _attach_direction_lists(["compare", "--directions=-x"]) == ["compare", "--directions=-x"]
+
+
+def test_misspelt_minus_direction_list_gets_the_commands_message(tmp_path, capsys):
+    problem = _write_small(tmp_path)
+    code = main(["compare", str(problem), "--out", str(tmp_path / "c"), "--directions", "-X,+y"])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "-X" in err
+    assert not (tmp_path / "c").exists()
 
 
 def test_command_bad_input_is_one_line(tmp_path, capsys):
