@@ -55,12 +55,11 @@ def build_filter_chain(problem, *, eta: float | None = None) -> FilterChain:
     # -- projection link (when [optimize.projection] or min_member_size is set) --
     etas = robust.thresholds(problem)
     if etas:
-        start = robust.projection_settings(problem).beta_start
+        settings = robust.projection_settings(problem)
         default_eta = etas[robust.BLUEPRINT] if len(etas) > 1 else etas[0]
-        preserve = robust.projection_settings(problem).preserve_volume
-        links.append(heaviside_projection(grid.shape, beta=start,
+        links.append(heaviside_projection(grid.shape, beta=settings.beta_start,
                                           eta=default_eta if eta is None else eta,
-                                          preserve_volume=preserve))
+                                          preserve_volume=settings.preserve_volume))
     links.append(FixedValues(problem.passive_solid, problem.passive_void))
     # -- printability link (appended here when build.direction != "none") --
     if problem.build.direction != "none":
@@ -135,6 +134,9 @@ def optimize(
     # the blueprint design is the one printed, reported and volume-constrained
     chain = chains[robust.BLUEPRINT] if len(chains) > 1 else chains[0]
     schedule = robust.beta_schedule(problem)
+    # with preserve_volume the projection finds its threshold anew at every forward pass
+    eta_finder = next((link for link in chain.links
+                       if isinstance(link, HeavisideProjection) and link.preserve_volume), None)
     move_limit = settings.move_limit
     active = ~(problem.passive_solid | problem.passive_void)
     n = active.size
@@ -210,9 +212,8 @@ def optimize(
                 row["compliance_dilated"] = compliances[2]
             if schedule is not None:
                 row["beta"] = schedule.beta
-                for link in chain.links:
-                    if isinstance(link, HeavisideProjection) and link.preserve_volume:
-                        row["eta"] = link.eta  # the threshold found at this iteration
+            if eta_finder is not None:
+                row["eta"] = eta_finder.eta
             history.append(row)
             if bar is not None:
                 bar.update(1)
