@@ -134,7 +134,7 @@ def parse_directions(text: str | None, ndim: int) -> list | None:
         raise ValueError("--directions: give at least one direction, e.g. --directions +z,-z")
     labels = [direction_label(d, ndim) for d in out]
     if len(set(labels)) != len(labels):
-        raise ValueError(f"--directions: a direction is repeated in {' '.join(labels)}")
+        raise ValueError(f"--directions: each direction may appear once, got {' '.join(labels)}")
     return out
 
 
