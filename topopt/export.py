@@ -108,7 +108,19 @@ def summary_dict(result, problem) -> dict:
     # -- print-preparation fields (unsupported_elements, overhang_area) are added here --
     summary.update(printability_summary(result.density, problem))
     summary.update(length_scale_summary(result.density, problem))
+    summary.update(structural_summary_of(result.density, problem))
     return summary
+
+
+def structural_summary_of(density: np.ndarray, problem) -> dict:
+    """Per load case displacements at the loads and von Mises stresses, and the mass.
+
+    See :mod:`topopt.stress` for which stress is reported (solid-material stress of
+    elements with density >= 0.5, at their centres).
+    """
+    from topopt.stress import structural_results, structural_summary
+
+    return structural_summary(structural_results(problem, density))
 
 
 def length_scale_summary(density: np.ndarray, problem) -> dict:
@@ -262,12 +274,30 @@ def write_vtu(path: str | Path, density: np.ndarray, problem) -> None:
     if grid.dim == 2:
         points = np.column_stack([points, np.zeros(len(points))])
     cell_type = "quad" if grid.dim == 2 else "hexahedron"
-    mesh = meshio.Mesh(points, [(cell_type, grid.element_nodes)],
-                       cell_data={"density": [np.asarray(density, dtype=float).ravel()]})
+    cell_data = {"density": [np.asarray(density, dtype=float).ravel()]}
+    point_data = {}
+    if np.any(np.asarray(density) >= 0.5):
+        from topopt.stress import structural_results
+
+        # per load case: von Mises stress of solid elements (NaN elsewhere), displacement
+        for case in structural_results(problem, np.asarray(density, dtype=float)).cases:
+            label = _field_label(case.name)
+            cell_data[f"von_mises_{label}"] = [case.von_mises.ravel()]
+            disp = case.displacement
+            if grid.dim == 2:
+                disp = np.column_stack([disp, np.zeros(len(disp))])
+            point_data[f"displacement_{label}"] = disp
+    mesh = meshio.Mesh(points, [(cell_type, grid.element_nodes)], cell_data=cell_data,
+                       point_data=point_data)
     # meshio picks the format from the suffix, so write to a .vtu temporary name.
     tmp = Path(path).with_name(f".{Path(path).stem}.partial.vtu")
     meshio.write(tmp, mesh, file_format="vtu")
     os.replace(tmp, path)
+
+
+def _field_label(case: str) -> str:
+    """A load-case name as a VTU field-name suffix (letters, digits, '_' and '-')."""
+    return "".join(ch if ch.isalnum() or ch in "_-" else "_" for ch in case) or "case"
 
 
 def write_stl(path: str | Path, density: np.ndarray, problem) -> None:
