@@ -102,6 +102,7 @@ def summary_dict(result, problem) -> dict:
         "solver": result.solver,
         "shape": list(problem.grid.shape),
         "element_size": problem.grid.element_size,
+        "units": problem.units.name,
         "version": __version__,
         "caution": CAUTION,
     }

@@ -141,7 +141,7 @@ class StructuralResults:
 
     cases: tuple[CaseResult, ...]
     solid_volume: float
-    mass: float | None
+    mass: float | None  # kg
 
 
 def structural_results(problem, density: np.ndarray, *, solver: str | None = None) -> StructuralResults:
@@ -229,12 +229,14 @@ def _solve_and_measure(problem, rho: np.ndarray, solver: str | None) -> Structur
         ))
     solid_volume = float(solid.sum()) * grid.element_volume
     mass_density = problem.material.mass_density
-    mass = None if mass_density is None else solid_volume * float(mass_density)
+    # masses are reported in kg whatever the problem's unit system
+    mass = (None if mass_density is None
+            else solid_volume * float(mass_density) * problem.units.kg_per_mass)
     return StructuralResults(tuple(cases), solid_volume, mass)
 
 
 def structural_summary(results: StructuralResults) -> dict:
-    """``summary.json`` fields: ``load_cases`` (list of figures), ``solid_volume``, ``mass``."""
+    """``summary.json`` fields: ``load_cases`` (list of figures), ``solid_volume``, ``mass`` (kg)."""
     return {
         "load_cases": [case.as_dict() for case in results.cases],
         "stress_convention": (
@@ -242,4 +244,5 @@ def structural_summary(results: StructuralResults) -> dict:
             f"elements with density >= {SOLID_LEVEL}; p99 = {ROBUST_PERCENTILE:g}th percentile"),
         "solid_volume": results.solid_volume,
         "mass": results.mass,
+        "mass_unit": "kg",
     }

@@ -371,8 +371,12 @@ def _run_dask(
     try:
         if scheduler is None:
             # Loopback only: the local cluster is never reachable from other machines.
-            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                   host="127.0.0.1", dashboard_address=None)
+            from topopt.parallel import workers_skip_main_script
+
+            # the workers need topopt only, not the caller's script (see the helper)
+            with workers_skip_main_script():
+                cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                       host="127.0.0.1", dashboard_address=None)
             client = Client(cluster)
         else:
             try:
@@ -590,7 +594,8 @@ def print_figures(problem: Problem, folder: Path) -> dict:
             directions=None if direction == "none" else [direction],
             overhang_angle=problem.build.overhang_angle,
             thickness=grid.thickness if grid.dim == 2 else 1.0, process=process,
-            mass_density=problem.material.mass_density,
+            mass_density=(None if problem.material.mass_density is None
+                          else problem.material.mass_density * problem.units.kg_per_mass),
         )
     except (ValueError, TypeError) as exc:
         # Keep the optimisation result; say why the figures are missing.

@@ -98,7 +98,8 @@ def test_inspect_results_folder_writes_the_report(tmp_path, capsys):
     plus_y = report["directions"][2]
     # by hand: 4 x 6 stem + 16 x 2 bar = 56 elements of 0.5 x 0.5 x 2 (thickness)
     assert plus_y["part_volume"] == pytest.approx(56 * 0.5)
-    assert plus_y["part_mass"] == pytest.approx(56 * 0.5 * 0.0027)
+    # mass in kg: the default unit system is mm-N-MPa-tonne, so the density is per tonne
+    assert plus_y["part_mass"] == pytest.approx(56 * 0.5 * 0.0027 * 1000.0)
     # the bar overhangs the stem by 6 elements each side; 45 degrees lets one print
     assert plus_y["overhang_area"] == pytest.approx(2 * 5 * 0.5 * 2.0)
     assert plus_y["support_on_part_volume"] == 0.0

@@ -162,13 +162,14 @@ def test_von_mises_field_matches_scikit_fem(skfem_reference, shape):
         assert case.von_mises_p99 == pytest.approx(np.percentile(ref[solid], 99), rel=1e-6)
 
 
-def test_mass_and_summary_fields(tmp_path):
-    # Mass by hand: solid volume times mass density; with every element solid the
-    # volume is the box 8 x 1 x 1 (2D: area times thickness).
+def test_mass_of_solid_elements():
+    # Mass by hand: solid volume times mass density, in kg (the default unit system is
+    # mm-N-MPa-tonne, so t/mm^3 times 1000); with every element solid the volume is the
+    # box 8 x 1 x 1 (2D: area times thickness).
     problem, _ = cantilever(2, 4)
     results = structural_results(problem, np.ones(problem.grid.shape))
     assert results.solid_volume == pytest.approx(LENGTH * HEIGHT * WIDTH)
-    assert results.mass == pytest.approx(LENGTH * HEIGHT * WIDTH * 4.43e-9)
+    assert results.mass == pytest.approx(LENGTH * HEIGHT * WIDTH * 4.43e-9 * 1000.0)
     half = np.ones(problem.grid.shape)
     half[: problem.grid.shape[0] // 2 :, -1] = 0.2  # a void strip: not counted
     assert structural_results(problem, half).solid_volume < results.solid_volume
@@ -200,7 +201,8 @@ def test_optimize_writes_structural_fields(tmp_path):
         assert c["von_mises_p99"] <= c["von_mises_max"]
         assert c["max_displacement"] > 0
     density = np.load(out / "result.npz")["density"]
-    assert summary["mass"] == pytest.approx((density >= 0.5).sum() * 2.7e-9)
+    assert summary["mass"] == pytest.approx((density >= 0.5).sum() * 2.7e-9 * 1000.0)
+    assert summary["mass_unit"] == "kg" and summary["units"] == "mm-N-MPa-tonne"
     mesh = meshio.read(out / "design.vtu")
     assert {"von_mises_hang", "von_mises_pull", "density"} <= set(mesh.cell_data)
     assert mesh.point_data["displacement_hang"].shape == (25 * 9, 3)

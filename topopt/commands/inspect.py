@@ -19,12 +19,11 @@ from pathlib import Path
 
 import numpy as np
 
-HELP = "check a design for overhangs, supports, trapped powder, build time and cost"
+from topopt.export import CAUTION  # the one caution text
 
-CAUTION = (
-    "Results are a design aid. Estimates of build time and cost are first-order; confirm "
-    "them, and the supports, with the machine's own build preparation."
-)
+HELP = "check a design for overhangs, supports, trapped powder, build time and cost"
+ESTIMATES_NOTE = ("Build time and cost are first-order estimates: confirm them, and the supports, "
+                  "with the machine's own build preparation.")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -49,6 +48,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--through-holes", action="store_true",
                         help="2D designs: treat the design as a plate extruded to its thickness, "
                              "so holes are open on both faces (no trapped powder)")
+    parser.add_argument("--allow-unclean", action="store_true",
+                        help="rank by score alone: a direction with unremovable support or "
+                             "trapped powder may then be named best (it is still flagged)")
     parser.add_argument("--overwrite", action="store_true",
                         help="replace an inspect report already in --out")
 
@@ -62,8 +64,15 @@ class LoadedDesign:
     thickness: float
     overhang_angle: float
     process: dict
-    mass_density: float | None
+    mass_density: float | None  # as in the problem file (its mass unit per length unit cubed)
     source: str
+    units: str | None = None
+    kg_per_mass: float = 1.0  # the problem's mass unit in kg
+
+    @property
+    def mass_density_kg(self) -> float | None:
+        """Mass density in kg per length unit cubed (masses in kg, powder price per kg)."""
+        return None if self.mass_density is None else self.mass_density * self.kg_per_mass
 
 
 def parse_weights(text: str) -> dict[str, float]:
@@ -210,7 +219,8 @@ def load_design(args: argparse.Namespace) -> LoadedDesign:
         process, mass_density = dict(PROCESS_DEFAULTS), None
     return LoadedDesign(density=density, element_size=element_size, thickness=thickness,
                         overhang_angle=angle, process=process, mass_density=mass_density,
-                        source=str(path))
+                        source=str(path), units=None if problem is None else problem.units.name,
+                        kg_per_mass=1.0 if problem is None else problem.units.kg_per_mass)
 
 
 def _positive(value: float, name: str) -> float:
@@ -242,20 +252,23 @@ def run(args: argparse.Namespace) -> int:
         overhang_angle=design.overhang_angle,
         thickness=design.thickness,
         process=design.process,
-        mass_density=design.mass_density,
+        mass_density=design.mass_density_kg,  # masses in kg, the powder price per kg
         weights=weights,
         keep_masks=True,
         through_holes=bool(args.through_holes),
+        allow_unclean=bool(args.allow_unclean),
     )
     rows = [r.as_dict() for r in reports]
     report = {
         "directions": rows,
         "best": best,
         "process": {**design.process, "mass_density": design.mass_density,
+                    "units": design.units, "mass_unit": "kg", "powder_price_per": "kg",
                     "overhang_angle": design.overhang_angle,
                     "enforced_overhang_angle": enforced_overhang_angle(design.overhang_angle)},
         "through_holes": bool(args.through_holes) and design.density.ndim == 2,
         "weights": weights,
+        "allow_unclean": bool(args.allow_unclean),
         "design": {"source": design.source, "shape": list(design.density.shape),
                    "element_size": design.element_size,
                    "thickness": design.thickness if design.density.ndim == 2 else None},
@@ -276,12 +289,12 @@ def run(args: argparse.Namespace) -> int:
 
 def _print_table(reports, best: str, no_mass: bool) -> None:
     print(f"{'direction':>9} {'height':>8} {'layers':>6} {'overhang':>9} {'support':>9} "
-          f"{'unremov.':>9} {'trapped':>9} {'time_h':>7} {'cost':>9} {'score':>6}")
+          f"{'unremov.':>9} {'trapped':>9} {'time_h':>7} {'cost':>9} {'score':>6} {'rank':>4}")
     for r in reports:
         print(f"{r.direction:>9} {r.build_height:8.4g} {r.layers:6d} {r.overhang_area:9.4g} "
               f"{r.support_volume:9.4g} {r.unremovable_support_volume:9.4g} "
               f"{r.trapped_powder_volume:9.4g} {r.build_time_h:7.3g} {r.material_cost:9.4g} "
-              f"{r.score:6.3f}")
+              f"{r.score:6.3f} {r.rank:4d}{'  (' + r.flag + ')' if r.flag else ''}")
     if no_mass:
         print("no mass density given ([material] mass_density): mass and cost not estimated")
     for r in reports:
@@ -292,6 +305,16 @@ def _print_table(reports, best: str, no_mass: bool) -> None:
             print(f"warning: {r.direction}: {r.unremovable_support_volume:.4g} of support "
                   "lies where a tool cannot reach it")
     print(f"best build direction: {best}")
+    chosen = next(r for r in reports if r.direction == best)
+    if chosen.flag:
+        print(f"warning: no direction can be cleaned completely; {best} has {chosen.flag}"
+              if not any(not r.flag for r in reports) else
+              f"warning: {best} has {chosen.flag} and is named best only because "
+              "--allow-unclean was given")
+    elif any(r.flag and r.score < chosen.score for r in reports):
+        print("note: directions with a lower score are ranked after it because of unremovable "
+              "support or trapped powder (--allow-unclean ranks by score alone)")
+    print(ESTIMATES_NOTE)
     print(CAUTION)
 
 
