@@ -373,7 +373,7 @@ def direction_masks(
     tool_access: float = PROCESS_DEFAULTS["tool_access"],
     smoothing: float = 1.5,
     window: int = 6,
-    through_holes: bool = False,
+    through_holes: bool = True,
     open_void: tuple | None = None,
 ) -> BuildMasks:
     """Voxel masks of overhangs, supports, removable space and trapped powder.
@@ -397,10 +397,10 @@ def direction_masks(
     window : int
         Layers over which the slope under a face is measured (see Notes).
     through_holes : bool
-        2D only. False (default): the design is a section and a void closed in the plane
-        is a closed cavity. True: the design is a plate extruded to its thickness, so
+        2D only. True (default): the design is a plate extruded to its thickness, so
         every hole is open on both faces; no powder is trapped, and a tool reaches any
-        place of a hole wide enough for it.
+        place of a hole wide enough for it. False: the design is a section of a closed
+        part and a void closed in the plane is a closed cavity.
 
     Returns
     -------
@@ -624,7 +624,7 @@ def analyze_design(
     mass_density: float | None = None,
     weights: Mapping[str, float] | None = None,
     keep_masks: bool = False,
-    through_holes: bool = False,
+    through_holes: bool = True,
     allow_unclean: bool = False,
 ) -> tuple[list[BuildReport], str, list[BuildMasks]]:
     """Analyse a design for several build directions and rank them.
@@ -652,7 +652,7 @@ def analyze_design(
     keep_masks : bool
         Return the voxel masks too (for pictures).
     through_holes : bool
-        2D only: holes open through the thickness (see :func:`direction_masks`).
+        2D only: holes open through the thickness (default; see :func:`direction_masks`).
     allow_unclean : bool
         Rank by score alone, also directions with unremovable support or trapped
         powder (see :func:`rank_directions`).

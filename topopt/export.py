@@ -70,13 +70,20 @@ def _jsonable(value):
 
 
 def write_csv(path: str | Path, rows: Iterable[dict], columns: list[str]) -> None:
-    """Write rows (dicts) as CSV with the given columns, atomically."""
+    """Write rows (dicts) as CSV with the given columns, atomically.
+
+    A missing value (None, or a NaN number: not estimated) is an empty cell.
+    """
     buf = io.StringIO()
     writer = csv.DictWriter(buf, fieldnames=columns, extrasaction="ignore", lineterminator="\n")
     writer.writeheader()
     for row in rows:
-        writer.writerow({k: ("" if row.get(k) is None else row.get(k)) for k in columns})
+        writer.writerow({k: ("" if _missing(row.get(k)) else row.get(k)) for k in columns})
     write_text(path, buf.getvalue())
+
+
+def _missing(value) -> bool:
+    return value is None or (isinstance(value, (float, np.floating)) and not np.isfinite(value))
 
 
 def write_npz(path: str | Path, **arrays: np.ndarray) -> None:
@@ -215,31 +222,60 @@ def write_png(path: str | Path, density: np.ndarray, problem) -> None:
     import matplotlib.pyplot as plt
 
     grid = problem.grid
-    fig = plt.figure(figsize=(7, 4.6), dpi=120)
+    unit = problem.units.length
+    fig = plt.figure(figsize=(7, 4.6) if grid.dim == 2 else (10, 4.8), dpi=120)
     if grid.dim == 2:
         ax = fig.add_subplot(111)
-        draw_design_2d(ax, density, grid.element_size)
+        image = draw_design_2d(ax, density, grid.element_size, length_unit=unit)
+        fig.colorbar(image, ax=ax, shrink=0.8, label="physical density (-)")
     else:
-        ax = fig.add_subplot(111, projection="3d")
-        draw_design_3d(ax, density, grid.element_size)
-    ax.set_title(f"{problem.name}  (build direction: {problem.build.direction})", fontsize=9)
+        from topopt.render import draw_print_3d, legend_handles
+
+        build = problem.build
+        keep_out = problem.passive_void if problem.passive_void.any() else None
+        # from above and from below: faces needing support face down
+        for k, view in enumerate(("iso", "below")):
+            ax = fig.add_subplot(1, 2, k + 1, projection="3d")
+            draw_print_3d(ax, density, element_size=grid.element_size,
+                          direction=build.direction, overhang_angle=build.overhang_angle,
+                          plate_offset=build.plate_offset, keep_out=keep_out,
+                          length_unit=unit, view=view)
+            ax.set_title("from above" if view == "iso" else "from below", fontsize=8)
+        fig.legend(handles=legend_handles(direction=build.direction,
+                                          keep_out=keep_out is not None),
+                   loc="upper right", fontsize=7)
+    fig.suptitle(f"{problem.name}  (build direction {_direction_text(problem.build.direction)}"
+                 f" points up)" if problem.build.active
+                 else f"{problem.name}  (free: no build direction)", fontsize=9)
     fig.text(0.01, 0.01, CAUTION, fontsize=5.5, wrap=True, color="0.35")
     atomic_write(path, lambda h: fig.savefig(h, format="png"))
     plt.close(fig)
 
 
-def draw_design_2d(ax, density: np.ndarray, element_size: float) -> None:
-    """Draw a 2D density field (x to the right, y up) in length units."""
+def _direction_text(direction) -> str:
+    if isinstance(direction, str):
+        return direction
+    return "[" + ", ".join(f"{v:g}" for v in direction) + "]"
+
+
+def draw_design_2d(ax, density: np.ndarray, element_size: float, *, length_unit: str = ""):
+    """Draw a 2D density field (x to the right, y up) in length units; returns the image."""
     nx, ny = density.shape
-    ax.imshow(density.T, origin="lower", cmap="gray_r", vmin=0.0, vmax=1.0,
-              extent=(0, nx * element_size, 0, ny * element_size), interpolation="nearest")
+    image = ax.imshow(density.T, origin="lower", cmap="gray_r", vmin=0.0, vmax=1.0,
+                      extent=(0, nx * element_size, 0, ny * element_size),
+                      interpolation="nearest")
     ax.set_aspect("equal")
-    ax.set_xlabel("x")
-    ax.set_ylabel("y")
+    suffix = f" ({length_unit})" if length_unit else ""
+    ax.set_xlabel("x" + suffix)
+    ax.set_ylabel("y" + suffix)
+    return image
 
 
 def draw_design_3d(ax, density: np.ndarray, element_size: float) -> None:
-    """Draw the 0.5 surface of a 3D density field with simple shading."""
+    """Draw the 0.5 surface of a 3D density field with simple shading (no build direction).
+
+    :func:`topopt.render.draw_print_3d` draws the print: plate, lighting, support faces.
+    """
     from mpl_toolkits.mplot3d.art3d import Poly3DCollection
     from skimage import measure
 

@@ -49,9 +49,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="self-supporting angle from the plate (default: problem or 45)")
     parser.add_argument("--weights", default="time=1,cost=1,support=1",
                         help="weights of the ranking, e.g. time=1,cost=0,support=2")
-    parser.add_argument("--through-holes", action="store_true",
-                        help="2D designs: treat the design as a plate extruded to its thickness, "
-                             "so holes are open on both faces (no trapped powder)")
+    holes = parser.add_mutually_exclusive_group()
+    holes.add_argument("--through-holes", dest="closed_holes", action="store_false", default=False,
+                       help="2D designs: a plate extruded to its thickness, holes open on both "
+                            "faces, no trapped powder (the default)")
+    holes.add_argument("--closed-holes", dest="closed_holes", action="store_true", default=False,
+                       help="2D designs: a section of a closed part, so a void closed in the "
+                            "plane traps powder")
     parser.add_argument("--allow-unclean", action="store_true",
                         help="rank by score alone: a direction with unremovable support or "
                              "trapped powder may then be named best (it is still flagged)")
@@ -301,7 +305,7 @@ def run(args: argparse.Namespace) -> int:
         mass_density=design.mass_density_kg,  # masses in kg, the powder price per kg
         weights=weights,
         keep_masks=True,
-        through_holes=bool(args.through_holes),
+        through_holes=not args.closed_holes,
         allow_unclean=bool(args.allow_unclean),
     )
     rows = [r.as_dict() for r in reports]
@@ -314,7 +318,7 @@ def run(args: argparse.Namespace) -> int:
                     "enforced_overhang_angle": min(
                         enforced_overhang_angle(design.overhang_angle, r.vector,
                                                 design.density.ndim) for r in reports)},
-        "through_holes": bool(args.through_holes) and design.density.ndim == 2,
+        "through_holes": (not args.closed_holes) and design.density.ndim == 2,
         "weights": weights,
         "allow_unclean": bool(args.allow_unclean),
         "design": {"source": design.source, "shape": list(design.density.shape),
@@ -329,11 +333,28 @@ def run(args: argparse.Namespace) -> int:
     write_csv(out / "inspect.csv", rows, list(REPORT_FIELDS))
     write_inspect_png(out / "inspect.png", reports, masks, best=best,
                       element_size=design.element_size)
+    if design.density.ndim == 3:  # the print itself, shaded: best-ranked directions
+        _write_print_views(out / "inspect-3d.png", design, reports)
     write_json(out / "inspect.json", report)  # last: its presence marks a finished report
     _print_table(reports if len(reports) <= 12 else _shortlist(reports, best), best,
                  design.mass_density is None)
-    print(f"report: {out}/inspect.json, table: {out}/inspect.csv, picture: {out}/inspect.png")
+    print(f"report: {out}/inspect.json, table: {out}/inspect.csv, picture: {out}/inspect.png"
+          + (f", 3D views: {out}/inspect-3d.png" if design.density.ndim == 3 else ""))
     return 0
+
+
+def _write_print_views(path: Path, design: LoadedDesign, reports) -> None:
+    """inspect-3d.png: the three best-ranked directions seen from the side and from below."""
+    from topopt.problem import UNIT_SYSTEMS
+    from topopt.render import write_print_views
+
+    top = sorted(reports, key=lambda r: r.rank)[:3]
+    unit = UNIT_SYSTEMS[design.units].length if design.units else ""
+    write_print_views(
+        path, design.density, directions=[r.vector or r.direction for r in top],
+        titles=[f"{r.rank}. {r.direction}" + (f" ({r.flag})" if r.flag else "") for r in top],
+        element_size=design.element_size, overhang_angle=design.overhang_angle,
+        length_unit=unit, caution=CAUTION)
 
 
 def _shortlist(reports, best: str, count: int = 10) -> list:
@@ -342,13 +363,18 @@ def _shortlist(reports, best: str, count: int = 10) -> list:
     return ordered[:count]
 
 
+def _cell(value: float, width: int) -> str:
+    """A number for the printed table, blank when it is not estimated (NaN)."""
+    return " " * width if not math.isfinite(value) else f"{value:{width}.4g}"
+
+
 def _print_table(reports, best: str, no_mass: bool) -> None:
     print(f"{'direction':>24} {'height':>8} {'layers':>6} {'overhang':>9} {'support':>9} "
           f"{'unremov.':>9} {'trapped':>9} {'time_h':>7} {'cost':>9} {'score':>6} {'rank':>4}")
     for r in reports:
         print(f"{r.direction:>24} {r.build_height:8.4g} {r.layers:6d} {r.overhang_area:9.4g} "
               f"{r.support_volume:9.4g} {r.unremovable_support_volume:9.4g} "
-              f"{r.trapped_powder_volume:9.4g} {r.build_time_h:7.3g} {r.material_cost:9.4g} "
+              f"{r.trapped_powder_volume:9.4g} {r.build_time_h:7.3g} {_cell(r.material_cost, 9)} "
               f"{r.score:6.3f} {r.rank:4d}{'  (' + r.flag + ')' if r.flag else ''}")
     if no_mass:
         print("no mass density given ([material] mass_density): mass and cost not estimated")
