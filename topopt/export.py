@@ -270,7 +270,7 @@ def write_png(path: str | Path, density: np.ndarray, problem) -> None:
                           direction=build.direction, overhang_angle=build.overhang_angle,
                           plate_offset=build.plate_offset, keep_out=keep_out,
                           length_unit=unit, view=view)
-            ax.set_title("from above" if view == "iso" else "from below", fontsize=8)
+            ax.set_title("from above" if view == "iso" else "from below", fontsize=8, y=1.06)
         fig.legend(handles=legend_handles(direction=build.direction,
                                           keep_out=keep_out is not None),
                    loc="upper right", fontsize=7)

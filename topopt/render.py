@@ -176,7 +176,9 @@ def draw_print_3d(
         colours = _shade(normals, PART_COLOUR, light, camera)
         if has_direction:
             needs = support_faces(normals, overhang_angle=overhang_angle)
-            needs &= tri[:, :, 2].max(axis=1) > 1e-6 * h  # faces on the plate stand on it
+            # faces within the lowest half element stand on the plate (the voxel analysis
+            # counts the first layer as resting on it)
+            needs &= tri[:, :, 2].max(axis=1) > 0.5 * h
             colours[needs] = _shade(normals[needs], SUPPORT_COLOUR, light, camera)
             info["support_faces"] = int(needs.sum())
             info["support_area"] = float(area[needs].sum() / 2.0)
@@ -243,7 +245,7 @@ def write_print_views(
 
     directions = list(directions)[:4]
     titles = list(titles) if titles is not None else [str(d) for d in directions]
-    fig = plt.figure(figsize=(9.0, 3.6 * len(directions) + 0.6), dpi=110)
+    fig = plt.figure(figsize=(10.0, 4.4 * len(directions) + 0.6), dpi=110)
     for row, direction in enumerate(directions):
         for col, view in enumerate(("side", "below")):
             ax = fig.add_subplot(len(directions), 2, 2 * row + col + 1, projection="3d")
@@ -251,14 +253,15 @@ def write_print_views(
                                  overhang_angle=overhang_angle, length_unit=length_unit,
                                  view=view)
             where = "from the side" if view == "side" else "from below"
-            area_unit = f"{length_unit}²" if length_unit else "(length unit)²"
-            extra = (f", support faces {info['support_area']:.3g} {area_unit}"
-                     if view == "below" else "")
-            ax.set_title(f"{titles[row]}: {where}{extra}", fontsize=8)
+            ax.set_title(f"{titles[row]}: {where}", fontsize=8, y=1.06)
+            if view == "below":
+                area_unit = f"{length_unit}²" if length_unit else "(length unit)²"
+                ax.text2D(0.0, -0.02, f"faces needing support: {info['support_area']:.3g} "
+                          f"{area_unit}", transform=ax.transAxes, fontsize=7)
     fig.legend(handles=legend_handles(direction="+z", keep_out=False), loc="upper right",
                fontsize=7)
     if caution:
         fig.text(0.01, 0.005, caution, fontsize=5.5, color="0.35", wrap=True)
-    fig.tight_layout(rect=(0, 0.02, 0.88, 1))
+    fig.subplots_adjust(left=0.02, right=0.86, bottom=0.04, top=0.95, wspace=0.25, hspace=0.3)
     atomic_write(path, lambda h: fig.savefig(h, format="png"))
     plt.close(fig)
