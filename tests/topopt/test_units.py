@@ -105,3 +105,22 @@ def test_unknown_unit_system_is_one_line_error():
     with pytest.raises(ValueError, match=r"units: .*mm-N-MPa-tonne") as info:
         problem_from_dict(table, source="p.toml")
     assert "\n" not in str(info.value)
+
+
+def test_inspect_units_option_without_problem_file(tmp_path, capsys):
+    # A 10 mm cube given in metres: the m-N-Pa-kg defaults give the same layers (334)
+    # and build time as the same cube in mm with the mm defaults.
+    np.save(tmp_path / "cube.npy", np.ones((10, 10, 10)))
+    times = []
+    for units, size in (("m-N-Pa-kg", "0.001"), (None, "1.0")):
+        out = tmp_path / f"r{len(times)}"
+        extra = ["--units", units] if units else []
+        assert main(["inspect", str(tmp_path / "cube.npy"), "--element-size", size,
+                     "--directions", "+z", "--out", str(out), *extra]) == 0
+        row = json.loads((out / "inspect.json").read_text())["directions"][0]
+        assert row["layers"] == 334
+        times.append(row["build_time_h"])
+    assert times[0] == pytest.approx(times[1], rel=1e-12)
+    assert main(["inspect", str(tmp_path / "cube.npy"), "--element-size", "1", "--units",
+                 "furlong", "--out", str(tmp_path / "bad")]) == 2
+    assert "--units" in capsys.readouterr().err

@@ -45,6 +45,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "voxelising an STL")
     parser.add_argument("--thickness", type=float, default=None,
                         help="out-of-plane thickness of a 2D design (default: problem or 1)")
+    parser.add_argument("--units", default=None, metavar="SYSTEM",
+                        help="unit system of a design without a problem file: mm-N-MPa-tonne "
+                             "(default) or m-N-Pa-kg; sets the process defaults' lengths")
     parser.add_argument("--overhang-angle", type=float, default=None, metavar="DEG",
                         help="self-supporting angle from the plate (default: problem or 45)")
     parser.add_argument("--weights", default="time=1,cost=1,support=1",
@@ -379,14 +382,25 @@ def load_design(args: argparse.Namespace) -> LoadedDesign:
         angle = float(args.overhang_angle)
     else:
         angle = problem.build.overhang_angle if problem is not None else 45.0
+    from topopt.problem import UNIT_SYSTEMS, ProcessSettings
+
+    units = getattr(args, "units", None)
+    if units is not None and units not in UNIT_SYSTEMS:
+        raise ValueError(f"--units: expected one of {', '.join(UNIT_SYSTEMS)}, got {units!r}")
     if problem is not None:
+        if units is not None and units != problem.units.name:
+            raise ValueError(f"--units {units} disagrees with the problem file's units "
+                             f"{problem.units.name!r}; leave --units out")
         process = {k: float(getattr(problem.process, k)) for k in PROCESS_DEFAULTS}
         mass_density = problem.material.mass_density
+        units = problem.units.name
     else:
-        process, mass_density = dict(PROCESS_DEFAULTS), None
+        defaults = ProcessSettings.defaults_for(units) if units else ProcessSettings()
+        process = {k: float(getattr(defaults, k)) for k in PROCESS_DEFAULTS}
+        mass_density = None
     return LoadedDesign(density=density, element_size=element_size, thickness=thickness,
                         overhang_angle=angle, process=process, mass_density=mass_density,
-                        source=str(path), units=None if problem is None else problem.units.name,
+                        source=str(path), units=units,
                         kg_per_mass=1.0 if problem is None else problem.units.kg_per_mass)
 
 
