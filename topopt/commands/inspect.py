@@ -473,7 +473,7 @@ def run(args: argparse.Namespace) -> int:
     out.mkdir(parents=True, exist_ok=True)
     write_csv(out / "inspect.csv", rows, list(REPORT_FIELDS))
     write_inspect_png(out / "inspect.png", reports, masks, best=best,
-                      element_size=design.element_size)
+                      element_size=design.element_size, length_unit=_length_unit(design))
     if design.density.ndim == 3:  # the print itself, shaded: best-ranked directions
         _write_print_views(out / "inspect-3d.png", design, reports)
     write_json(out / "inspect.json", report)  # last: its presence marks a finished report
@@ -484,13 +484,19 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _length_unit(design: LoadedDesign) -> str:
+    """The design's length unit ("" when no unit system is known)."""
+    from topopt.problem import UNIT_SYSTEMS
+
+    return UNIT_SYSTEMS[design.units].length if design.units else ""
+
+
 def _write_print_views(path: Path, design: LoadedDesign, reports) -> None:
     """inspect-3d.png: the three best-ranked directions seen from the side and from below."""
-    from topopt.problem import UNIT_SYSTEMS
     from topopt.render import write_print_views
 
     top = sorted(reports, key=lambda r: r.rank)[:3]
-    unit = UNIT_SYSTEMS[design.units].length if design.units else ""
+    unit = _length_unit(design)
     write_print_views(
         path, design.density, directions=[r.vector or r.direction for r in top],
         titles=[f"{r.rank}. {r.direction}" + (f" ({r.flag})" if r.flag else "") for r in top],
@@ -659,7 +665,8 @@ def _draw_map(ax, reports, best: str) -> None:
     ax.tick_params(labelsize=6)
 
 
-def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -> None:
+def write_inspect_png(path, reports, masks, *, best: str, element_size: float,
+                      length_unit: str = "") -> None:
     """Panels per direction (build direction up, plate at the bottom) and bar charts; for
     an orientation search, a map of every direction beside the best ones' panels."""
     import matplotlib
@@ -681,8 +688,12 @@ def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -
     rows = math.ceil(n / cols)
     fig = plt.figure(figsize=(3.6 * cols + (1.5 if many else 0), 3.1 * rows + 3.0), dpi=110)
     grid = fig.add_gridspec(rows + 1, cols, height_ratios=[3.0] * rows + [2.6])
+    unit = f" [{length_unit}]" if length_unit else ""
     for k, (r, m) in enumerate(shown):
-        _draw_panel(fig.add_subplot(grid[k // cols, k % cols]), r, m, element_size, best)
+        ax = fig.add_subplot(grid[k // cols, k % cols])
+        _draw_panel(ax, r, m, element_size, best)
+        ax.set_xlabel(ax.get_xlabel() + unit, fontsize=7)  # axes in the length unit
+        ax.set_ylabel(ax.get_ylabel() + unit, fontsize=7)
     legend = [Patch(color=_COLOURS[k], label=label) for k, label in (
         ("solid", "part"), ("overhang", "surface needing support"), ("support", "support"),
         ("unremovable", "support out of tool reach"), ("trapped", "trapped powder"))]
@@ -691,9 +702,10 @@ def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -
         _draw_map(fig.add_subplot(grid[rows, :]), reports, best)
     else:
         names = [r.direction for r in reports]
-        bars = (("support volume", [r.support_volume for r in reports]),
+        volume = f" ({length_unit}³)" if length_unit else ""
+        bars = (("support volume" + volume, [r.support_volume for r in reports]),
                 ("build time (h)", [r.build_time_h for r in reports]),
-                ("material cost", [r.material_cost for r in reports]))
+                ("material cost (currency)", [r.material_cost for r in reports]))
         sub = grid[rows, :].subgridspec(1, 3, wspace=0.35)
         for k, (label, values) in enumerate(bars):
             ax = fig.add_subplot(sub[0, k])
