@@ -323,7 +323,8 @@ def optimize(
                 break
             if schedule is not None and schedule.step(change=change):
                 set_beta(chains, schedule.beta)
-            move_limit = damping.step(change, final=schedule is None or schedule.at_max)
+            if schedule is not None:
+                move_limit = damping.step(change, final=schedule.at_max)
             if updater is not None:
                 updater.mma.move = move_limit
             if checkpoint is not None and iteration % settings.checkpoint_every == 0:
@@ -357,7 +358,7 @@ def optimize(
 class MoveDamping:
     """Halve the move limit while a design at its final sharpness keeps swinging.
 
-    Once the projection has reached its final beta (or without projection), every
+    Once the projection has reached its final beta (runs with projection only), every
     ``patience`` iterations whose largest design change stayed at or above ``floor``
     halve the move limit, down to ``floor`` (twice the change tolerance, so a design
     never counts as converged only because it may not move). Measured on the wall
