@@ -19,7 +19,7 @@ import numpy as np
 from filters.chain import FilterChain, FixedValues
 from filters.density import density_filter
 from filters.projection import HeavisideProjection, heaviside_projection
-from topopt import robust
+from topopt import interrupt, robust
 from topopt.objective import ComplianceModel, grey_level, volume_fraction
 from topopt.optimizers import MMAComplianceUpdate, oc_update
 
@@ -180,8 +180,13 @@ def optimize(
     iteration = start_iteration
     try:
         while iteration < settings.max_iterations:
+            interrupt.check()  # a Ctrl-C that Python swallowed is honoured here
             physical = chain.forward(x)
             ev = model.evaluate(physical)
+            if not np.isfinite(ev.compliance):
+                raise ValueError(f"{problem.path}: the compliance became {ev.compliance} at "
+                                 f"iteration {iteration + 1}; check the magnitudes of loads, "
+                                 "material.youngs_modulus and domain.element_size")
             dc = chain.backward(ev.gradient)
             dv = chain.backward(unit_volume_gradient)
             vol = volume_fraction(physical)
@@ -189,44 +194,49 @@ def optimize(
             if len(chains) > 1:
                 # robust formulation: eroded, blueprint and dilated designs
                 compliances, gradients = _robust_designs(chains, model, x, ev, dc)
-            if updater is None:
-                x_new = oc_update(
-                    x, dc, dv, volume=vol, volume_fraction=settings.volume_fraction,
-                    move=move_limit, active=active,
-                )
-            else:
-                x_new = updater(x, compliances=compliances, gradients=gradients, volume=vol, dv=dv)
-            change = float(np.max(np.abs(x_new - x)))
-            x = x_new
-            iteration += 1
-            row = {
-                "iteration": iteration,
-                "compliance": ev.compliance,
-                "volume_fraction": vol,
-                "change": change,
-                "grey_level": grey_level(physical),
-                "elapsed_s": time.perf_counter() - t0,
-            }
-            if len(chains) > 1:
-                row["compliance_eroded"] = compliances[0]
-                row["compliance_dilated"] = compliances[2]
-            if schedule is not None:
-                row["beta"] = schedule.beta
-            if eta_finder is not None:
-                row["eta"] = eta_finder.eta
-            history.append(row)
-            if bar is not None:
-                bar.update(1)
-                bar.set_postfix(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
-            # with continuation, only a still design at the final beta counts as converged
-            if change < settings.change_tolerance and (schedule is None or schedule.at_max):
-                converged = True
-                message = f"converged: largest design change {change:.4g} < {settings.change_tolerance}"
-                break
-            if schedule is not None and schedule.step(change=change):
-                set_beta(chains, schedule.beta)
+            # the update changes the optimiser's memory, the design, the count, the history
+            # and beta together: a signal inside waits for the end (a checkpoint never
+            # mixes two iterations)
+            with interrupt.deferred():
+                if updater is None:
+                    x_new = oc_update(
+                        x, dc, dv, volume=vol, volume_fraction=settings.volume_fraction,
+                        move=move_limit, active=active,
+                    )
+                else:
+                    x_new = updater(x, compliances=compliances, gradients=gradients, volume=vol, dv=dv)
+                change = float(np.max(np.abs(x_new - x)))
+                row = {
+                    "iteration": iteration + 1,
+                    "compliance": ev.compliance,
+                    "volume_fraction": vol,
+                    "change": change,
+                    "grey_level": grey_level(physical),
+                    "elapsed_s": time.perf_counter() - t0,
+                }
+                if len(chains) > 1:
+                    row["compliance_eroded"] = compliances[0]
+                    row["compliance_dilated"] = compliances[2]
+                if schedule is not None:
+                    row["beta"] = schedule.beta
+                if eta_finder is not None:
+                    row["eta"] = eta_finder.eta
+                x = x_new
+                iteration += 1
+                history.append(row)
+                if bar is not None:
+                    bar.update(1)
+                    bar.set_postfix(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
+                # with continuation, only a still design at the final beta counts as converged
+                if change < settings.change_tolerance and (schedule is None or schedule.at_max):
+                    converged = True
+                    message = f"converged: largest design change {change:.4g} < {settings.change_tolerance}"
+                    break
+                if schedule is not None and schedule.step(change=change):
+                    set_beta(chains, schedule.beta)
             if checkpoint is not None and iteration % settings.checkpoint_every == 0:
                 checkpoint(state(iteration))
+        interrupt.check()
     except KeyboardInterrupt:
         if checkpoint is not None:
             checkpoint(state(iteration))

@@ -298,6 +298,95 @@ def _list_of_tables(r: _Reader, data: Mapping, key: str) -> list[Mapping]:
     return value
 
 
+#: Longest ``name`` (it titles pictures and tables).
+MAX_NAME = 1000
+#: Deepest nesting of tables and lists a problem or study file may have.
+MAX_DEPTH = 32
+#: Scales (force, stiffness, lengths and their products) must lie within
+#: [1 / MAGNITUDE, MAGNITUDE]: far inside the double range (about 1e+-308), so sums over
+#: millions of elements, squares and the solvers' intermediate values stay finite and
+#: keep their precision (common practice: keep magnitudes well away from the limits).
+MAGNITUDE = 1e100
+
+
+def _check_budget(r: _Reader, data: Mapping, grid: Grid) -> None:
+    """Refuse a problem whose memory estimate exceeds the cap (topopt.memory)."""
+    from topopt.memory import check_memory
+
+    opt = data.get("optimize") if isinstance(data.get("optimize"), Mapping) else {}
+    radius = 1.5 * grid.element_size
+    for key in ("filter_radius", "min_member_size"):
+        value = opt.get(key)
+        if isinstance(value, (int, float)) and not isinstance(value, bool) and value > 0:
+            radius = max(radius, float(value))
+    solver = opt.get("solver") if isinstance(opt.get("solver"), str) else "auto"
+    try:
+        check_memory(grid.shape, filter_radius=radius, element_size=grid.element_size,
+                     solver=solver, source=r.source)
+    except ValueError as exc:
+        raise ProblemError(str(exc)) from None
+
+
+def _check_magnitudes(r: _Reader, grid: Grid, material: Material, loads) -> None:
+    """Every scale of the model representable: refuse absurd numbers before any work.
+
+    Checked: element size and the element volume, Young's modulus and the void
+    stiffness, each force, the stiffness of one element (E h, or E t in 2D), and the
+    displacement and compliance a force would give on one element of solid and of void.
+    """
+    low, high = 1.0 / MAGNITUDE, MAGNITUDE
+    t = grid.thickness if grid.dim == 2 else grid.element_size
+    log = math.log10
+
+    def within(value_log: float) -> bool:
+        return log(low) <= value_log <= log(high)
+
+    h, E = grid.element_size, material.youngs_modulus
+    checks = [
+        ("domain.element_size", log(h), f"{h!r}"),
+        ("domain.element_size", grid.dim * log(h) + (log(t) if grid.dim == 2 else 0.0),
+         "an element volume of 1e%.0f"),
+        ("material.youngs_modulus", log(E), f"{E!r}"),
+        ("material.youngs_modulus", log(E) + log(t), "an element stiffness of 1e%.0f"),
+        ("material.void_stiffness", log(E) + log(t) + log(material.void_stiffness),
+         "a void stiffness of 1e%.0f"),
+    ]
+    if grid.dim == 2:
+        checks.append(("domain.thickness", log(t), f"{t!r}"))
+    for i, load in enumerate(loads):
+        size = max(abs(f) for f in load.force)
+        if size == 0:
+            continue  # reported below as a zero force
+        k = log(E) + log(t)
+        checks += [
+            (f"loads[{i}].force", log(size), f"{size!r}"),
+            (f"loads[{i}].force", log(size) - k, "a displacement of order 1e%.0f"),
+            (f"loads[{i}].force", 2 * log(size) - k - log(material.void_stiffness),
+             "a compliance of order 1e%.0f on void"),
+            (f"loads[{i}].force", 2 * log(size) - k, "a compliance of order 1e%.0f"),
+        ]
+    for key, value_log, what in checks:
+        if not within(value_log):
+            shown = what % value_log if "%" in what else what
+            raise r.fail(key, f"{shown} is outside [1e-100, 1e100] with the other values "
+                         "(element_size, youngs_modulus, void_stiffness, force); use units "
+                         "that keep the numbers moderate")
+
+
+def _check_depth(data: Any, source: str, *, error: type[ValueError] | None = None) -> None:
+    """Refuse tables and lists nested deeper than :data:`MAX_DEPTH` (iteratively)."""
+    stack = [(data, 0)]
+    while stack:
+        value, depth = stack.pop()
+        if depth > MAX_DEPTH:
+            raise (error or ProblemError)(f"{source}: nested deeper than {MAX_DEPTH} levels of "
+                                          "tables or lists")
+        if isinstance(value, Mapping):
+            stack.extend((v, depth + 1) for v in value.values())
+        elif isinstance(value, list):
+            stack.extend((v, depth + 1) for v in value)
+
+
 TOP_KEYS = {"name", "domain", "material", "restraints", "loads", "passive", "optimize", "build", "process"}
 OPTIMIZE_KEYS = {
     "volume_fraction", "filter_radius", "penalty", "method", "max_iterations",
@@ -337,8 +426,11 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
     r = _Reader(source)
     if not isinstance(data, Mapping):
         raise r.fail("(top level)", "expected a TOML document")
+    _check_depth(data, source)
     r.no_unknown(data, "", TOP_KEYS)
     name = r.string(data, "name", "name", default=Path(source).stem)
+    if len(name) > MAX_NAME:
+        raise r.fail("name", f"expected at most {MAX_NAME} characters, got {len(name)}")
 
     dom = r.table(data, "domain", {"shape", "element_size", "thickness"})
     shape_raw = dom.get("shape")
@@ -350,14 +442,15 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         raise r.fail("domain.shape", f"expected 2 or 3 whole numbers such as [120, 60], got {shape_raw!r}")
     if any(n < 1 for n in shape_raw):
         raise r.fail("domain.shape", f"expected positive element counts, got {shape_raw!r}")
-    if int(np.prod(shape_raw)) > 50_000_000:
-        raise r.fail("domain.shape", f"expected at most 5e7 elements, got {int(np.prod(shape_raw))}")
+    if math.prod(shape_raw) > 50_000_000:  # Python integers: no wrap-round
+        raise r.fail("domain.shape", f"expected at most 5e7 elements, got {math.prod(shape_raw)}")
     dim = len(shape_raw)
     h = r.number(dom, "element_size", "domain.element_size", low=0.0, low_open=True)
     if dim == 3 and "thickness" in dom:
         raise r.fail("domain.thickness", "only 2D domains take a thickness")
     thickness = r.number(dom, "thickness", "domain.thickness", default=1.0, low=0.0, low_open=True)
     grid = Grid(tuple(shape_raw), h, thickness)
+    _check_budget(r, data, grid)
 
     mat = r.table(data, "material", {"youngs_modulus", "poisson_ratio", "void_stiffness", "mass_density"})
     material = Material(
@@ -369,6 +462,8 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         mass_density=r.number(mat, "mass_density", "material.mass_density", default=None,
                               low=0.0, low_open=True),
     )
+
+    _check_magnitudes(r, grid, material, ())  # before any region is selected
 
     restraints = []
     items = _list_of_tables(r, data, "restraints")
@@ -434,6 +529,8 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         else:
             void |= mask
             solid &= ~mask
+
+    _check_magnitudes(r, grid, material, loads)
 
     # A load on nodes that touch only passive void would act on nothing.
     touches_material = np.zeros(grid.n_nodes, dtype=bool)
@@ -628,9 +725,13 @@ def read_toml(path: Path, *, what: str, error: type[ValueError] = ProblemError) 
     except OSError as exc:
         raise error(f"{path}: cannot be read ({exc.strerror})") from None
     try:
-        return tomllib.loads(text)
+        data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise error(f"{path}: not valid TOML ({exc})") from None
+    except RecursionError:
+        raise error(f"{path}: nested deeper than {MAX_DEPTH} levels of tables or lists") from None
+    _check_depth(data, str(path), error=error)
+    return data
 
 
 def load_problem(path: str | Path) -> Problem:
