@@ -301,7 +301,7 @@ def summary_dict(result, problem) -> dict:
     from topopt import __version__
     from topopt.export import CAUTION
 
-    metrics = getattr(result, "metrics", None) or result_metrics(result.density, problem)
+    metrics = result_metrics(result, problem)
     summary = {
         "name": problem.name,
         "compliance": result.compliance,
@@ -323,11 +323,12 @@ def summary_dict(result, problem) -> dict:
     return summary
 
 
-def result_metrics(density: np.ndarray, problem) -> dict:
-    """Print-preparation and length-scale figures of a physical density (see export)."""
+def result_metrics(result, problem) -> dict:
+    """Print-preparation and length-scale figures of a result's physical density."""
     from topopt.export import length_scale_summary, printability_summary
 
-    return {**printability_summary(density, problem), **length_scale_summary(density, problem)}
+    return {**printability_summary(result.density, problem, result),
+            **length_scale_summary(result.density, problem)}
 
 
 # ---------------------------------------------------------------------------- reading
