@@ -11,6 +11,7 @@ import argparse
 import importlib
 import os
 import sys
+import warnings
 
 #: Subcommand name -> module implementing it.
 COMMANDS: dict[str, str] = {
@@ -101,10 +102,24 @@ def main(argv: list[str] | None = None) -> int:
     if not getattr(args, "_run", None):
         parser.print_help()
         return 2
+    from topopt.memory import ENV
+
+    saved_cap = os.environ.get(ENV)
+    with warnings.catch_warnings():
+        # a warning from the library is one line on stderr, like an error (the filters
+        # are left alone: the test run still turns warnings into errors)
+        warnings.showwarning = _show_warning
+        return _run(args, saved_cap)
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    print(f"buttress: warning: {_one_line(Exception(str(message)))}", file=sys.stderr)
+
+
+def _run(args: argparse.Namespace, saved_cap: str | None) -> int:
     from topopt import interrupt
     from topopt.memory import ENV, parse_gigabytes
 
-    saved_cap = os.environ.get(ENV)
     try:
         # Ctrl-C and SIGTERM are recorded from here on, so none is lost (topopt.interrupt)
         with interrupt.handlers():

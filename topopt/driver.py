@@ -21,7 +21,7 @@ from filters.density import density_filter
 from filters.projection import HeavisideProjection, heaviside_projection
 from topopt import interrupt, robust
 from topopt.objective import ComplianceModel, grey_level, volume_fraction
-from topopt.optimizers import MMAComplianceUpdate, oc_update
+from topopt.optimizers import OPTIMIZERS, oc_update
 
 
 @dataclass(frozen=True, eq=False)
@@ -224,9 +224,14 @@ def optimize(
         holdable = problem.passive_solid & ~unholdable
         if holdable.any():
             keep_in = KeepInConstraint(chain, holdable)
+    # the update rule is found by name in the registry; an unknown name is an error
+    rule = OPTIMIZERS.get(settings.method)
+    if rule is None:
+        raise ValueError(f"{problem.path}: optimize.method: expected one of "
+                         f"{', '.join(sorted(OPTIMIZERS))}, got {settings.method!r}")
     updater = None
-    if settings.method == "mma":
-        updater = MMAComplianceUpdate(active, volume_fraction=settings.volume_fraction,
+    if rule is not oc_update:
+        updater = rule(active, volume_fraction=settings.volume_fraction,
                                       n_designs=len(chains), move=move_limit,
                                       extra_constraints=int(keep_in is not None))
 

@@ -36,6 +36,13 @@ class Material:
     void_stiffness: float = 1e-9
     mass_density: float | None = None
 
+    def __post_init__(self) -> None:
+        _field_in(self, "youngs_modulus", 0.0, math.inf, low_open=True)
+        _field_in(self, "poisson_ratio", -1.0, 0.5, low_open=True, high_open=True)
+        _field_in(self, "void_stiffness", 0.0, 1.0, low_open=True, high_open=True)
+        if self.mass_density is not None:
+            _field_in(self, "mass_density", 0.0, math.inf, low_open=True)
+
 
 @dataclass(frozen=True)
 class Restraint:
@@ -84,6 +91,24 @@ class OptimizeSettings:
     checkpoint_every: int = 10
     projection: Projection | None = None
     min_member_size: float | None = None
+
+    def __post_init__(self) -> None:
+        _field_in(self, "volume_fraction", 0.0, 1.0, low_open=True, high_open=True)
+        _field_in(self, "filter_radius", 0.0, math.inf, low_open=True)
+        _field_in(self, "penalty", 1.0, 10.0)
+        _field_in(self, "max_iterations", 1, 100000, integer=True)
+        _field_in(self, "change_tolerance", 0.0, 1.0, low_open=True)
+        _field_in(self, "move_limit", 0.0, 1.0, low_open=True)
+        _field_in(self, "checkpoint_every", 1, math.inf, integer=True)
+        if self.min_member_size is not None:
+            _field_in(self, "min_member_size", 0.0, math.inf, low_open=True)
+        from topopt.optimizers import OPTIMIZERS
+
+        if self.method not in METHODS or self.method not in OPTIMIZERS:
+            raise ValueError(f"OptimizeSettings.method: expected one of "
+                             f"{', '.join(repr(m) for m in METHODS)}, got {self.method!r}")
+        if not isinstance(self.solver, str):
+            raise TypeError(f"OptimizeSettings.solver: expected a string, got {self.solver!r}")
 
 
 @dataclass(frozen=True)
@@ -136,8 +161,30 @@ class Problem:
     optimize: OptimizeSettings = field(repr=False)
     build: BuildSettings = field(default_factory=BuildSettings)
     process: ProcessSettings = field(default_factory=ProcessSettings)
-    source: Mapping = field(default_factory=dict, repr=False)
+    table: Mapping = field(default_factory=dict, repr=False)
     path: str = "<problem>"
+
+    def __post_init__(self) -> None:
+        for name in ("passive_solid", "passive_void"):
+            mask = getattr(self, name)
+            if not isinstance(mask, np.ndarray) or mask.dtype != bool or mask.shape != self.grid.shape:
+                raise ValueError(f"Problem.{name}: expected a boolean array of shape "
+                                 f"{self.grid.shape}")
+        for name, kind in (("material", Material), ("optimize", OptimizeSettings),
+                           ("build", BuildSettings), ("process", ProcessSettings)):
+            if not isinstance(getattr(self, name), kind):
+                raise TypeError(f"Problem.{name}: expected a {kind.__name__}, got "
+                                f"{type(getattr(self, name)).__name__}")
+
+    @property
+    def source(self) -> dict:
+        """The problem as a table (the problem-file form), derived from the typed fields.
+
+        Starts from the table the problem was read from (so regions and keys keep their
+        spelling) and writes every typed setting that differs from it back, so a problem
+        changed with ``dataclasses.replace`` writes, digests and varies as it now is.
+        """
+        return problem_table(self)
 
     @property
     def load_cases(self) -> tuple[str, ...]:
@@ -321,6 +368,155 @@ MAX_DEPTH = 32
 #: millions of elements, squares and the solvers' intermediate values stay finite and
 #: keep their precision (common practice: keep magnitudes well away from the limits).
 MAGNITUDE = 1e100
+
+
+def _field_in(obj, name: str, low, high, *, low_open: bool = False, high_open: bool = False,
+              integer: bool = False) -> None:
+    """Check one typed field on construction: ValueError / TypeError naming it."""
+    value = getattr(obj, name)
+    label = f"{type(obj).__name__}.{name}"
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
+        raise TypeError(f"{label}: expected a number, got {value!r}")
+    if integer and not float(value).is_integer():
+        raise TypeError(f"{label}: expected a whole number, got {value!r}")
+    bad = (not math.isfinite(value) or (value <= low if low_open else value < low)
+           or (value >= high if high_open else value > high))
+    if bad:
+        raise ValueError(f"{label}: expected a number in {'(' if low_open else '['}{low}, "
+                         f"{high}{')' if high_open else ']'}, got {value!r}")
+
+
+def _plain(value: Any) -> Any:
+    """Tuples as lists and numpy scalars as Python numbers (TOML data)."""
+    if isinstance(value, (tuple, list)):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
+
+
+def _put(table: dict, key: str, value: Any, default: Any = ...) -> None:
+    """Write a typed value into a table when it differs from what the table says."""
+    value = _plain(value)
+    if key in table:
+        if table[key] != value:
+            table[key] = value
+    elif default is ... or value != _plain(default):
+        table[key] = value
+
+
+def problem_table(problem: Problem) -> dict:
+    """The problem-file table of ``problem``, derived from its typed fields.
+
+    Examples
+    --------
+    >>> # problem_table(dataclasses.replace(p, name="b"))["name"]
+    """
+    data = copy.deepcopy(dict(problem.table))
+    grid = problem.grid
+    _put(data, "name", problem.name, Path(problem.path).stem)
+    dom = data.setdefault("domain", {})
+    _put(dom, "shape", list(grid.shape))
+    _put(dom, "element_size", grid.element_size)
+    if grid.dim == 2:
+        _put(dom, "thickness", grid.thickness, 1.0)
+    mat = data.setdefault("material", {})
+    for key, default in (("youngs_modulus", ...), ("poisson_ratio", ...),
+                         ("void_stiffness", 1e-9), ("mass_density", None)):
+        value = getattr(problem.material, key)
+        if value is None:
+            mat.pop(key, None)
+        else:
+            _put(mat, key, value, default)
+    # regions stay as the table gives them (their nodes are found from it when loading)
+    restraints = []
+    for rr, table in zip(problem.restraints, _tables(data, "restraints", len(problem.restraints)),
+                         strict=True):
+        table = dict(table)
+        _put(table, "fix", list(rr.fix), list(AXES[:grid.dim]))
+        restraints.append(table)
+    data["restraints"] = restraints
+    loads = []
+    for load, table in zip(problem.loads, _tables(data, "loads", len(problem.loads)), strict=True):
+        table = dict(table)
+        _put(table, "force", list(load.force))
+        _put(table, "case", load.case, "default")
+        loads.append(table)
+    data["loads"] = loads
+    opt = data.setdefault("optimize", {})
+    settings = problem.optimize
+    radius_default = 1.5 * grid.element_size
+    method_default = "mma" if problem.build.active else "oc"  # as the reader chooses
+    for key, default in (("volume_fraction", ...), ("penalty", 3.0), ("method", method_default),
+                         ("max_iterations", 200), ("change_tolerance", 0.01),
+                         ("solver", "auto"), ("checkpoint_every", 10)):
+        _put(opt, key, getattr(settings, key), default)
+    if settings.min_member_size is None:
+        opt.pop("min_member_size", None)
+        _put(opt, "filter_radius", settings.filter_radius, radius_default)
+    else:
+        _put(opt, "min_member_size", settings.min_member_size)
+    # the projection the reader adds by itself with a build direction (see problem_from_dict)
+    implied = (Projection(every=DEFAULT_BETA_EVERY)
+               if problem.build.active and settings.min_member_size is None else None)
+    if settings.projection is None:
+        opt.pop("projection", None)
+    elif "projection" not in opt and settings.projection == implied:
+        pass
+    else:
+        pt = opt.setdefault("projection", {})
+        defaults = Projection()
+        for key in Projection.__dataclass_fields__:
+            _put(pt, key, getattr(settings.projection, key), getattr(defaults, key))
+    _put(opt, "move_limit", settings.move_limit, _default_move_limit(problem.build, opt))
+    bt = data.get("build", {})
+    for key, default in (("direction", "none"), ("overhang_angle", 45.0), ("plate_offset", 0.0),
+                         ("keep_in", "held")):
+        _put(bt, key, getattr(problem.build, key), default)
+    if bt:
+        data["build"] = bt
+    pr = data.get("process", {})
+    defaults = ProcessSettings()
+    for key in ProcessSettings.__dataclass_fields__:
+        _put(pr, key, getattr(problem.process, key), getattr(defaults, key))
+    if pr:
+        data["process"] = pr
+    return data
+
+
+def _tables(data: Mapping, key: str, n: int) -> list[Mapping]:
+    items = data.get(key, [])
+    items = list(items) if isinstance(items, list) else []
+    return (items + [{}] * n)[:n]
+
+
+def _warn_cut_load_paths(r: _Reader, grid: Grid, void: np.ndarray, restraints, loads) -> None:
+    """Warn when passive void separates a load from every restraint.
+
+    Elements outside passive void that share a node form one piece; a load on a piece
+    with no restrained node can only be carried by the void stiffness, so the run ends
+    with an enormous compliance. Valid input, but worth a line (a warning, not an error).
+    """
+    import warnings
+
+    from scipy import ndimage
+
+    if not void.any():
+        return
+    pieces, count = ndimage.label(~void, structure=np.ones((3,) * grid.dim, dtype=bool))
+    if count <= 1:
+        return
+    node_piece = np.zeros(grid.n_nodes, dtype=np.int64)
+    node_piece[grid.element_nodes.reshape(-1)] = np.repeat(pieces.ravel(), grid.element_nodes.shape[1])
+    anchored = set(np.unique(node_piece[np.concatenate([rr.nodes for rr in restraints])]).tolist())
+    anchored.discard(0)
+    for i, load in enumerate(loads):
+        loaded = set(np.unique(node_piece[load.nodes]).tolist()) - {0}
+        if loaded and not loaded & anchored:
+            warnings.warn(f"{r.source}: loads[{i}].where: passive void cuts this load off from "
+                          "every restraint; only the void stiffness can carry it, so the "
+                          "compliance will be enormous (check the [[passive]] regions)",
+                          UserWarning, stacklevel=3)
 
 
 def _check_budget(r: _Reader, data: Mapping, grid: Grid) -> None:
@@ -553,6 +749,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         if not touches_material[load.nodes].all():
             raise r.fail(f"loads[{i}].where", "selects nodes surrounded by passive void; "
                          "the load would act on nothing (move it onto material)")
+    _warn_cut_load_paths(r, grid, void, restraints, loads)
     # A load that does no work leaves compliance at zero: nothing to optimise.
     restrained = np.zeros(grid.n_dofs, dtype=bool)
     for rr in restraints:
@@ -677,7 +874,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
     return Problem(
         name=name, grid=grid, material=material, restraints=tuple(restraints),
         loads=tuple(loads), passive_solid=solid, passive_void=void, optimize=optimize,
-        build=build, process=process, source=copy.deepcopy(dict(data)), path=source,
+        build=build, process=process, table=copy.deepcopy(dict(data)), path=source,
     )
 
 
