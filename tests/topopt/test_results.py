@@ -213,7 +213,7 @@ def folder_is_complete(out: Path, iterations: int) -> bool:
     return folder.summary["iterations"] == iterations and folder.problem.optimize.max_iterations == iterations
 
 
-@pytest.mark.parametrize("rounds", [6, pytest.param(50, marks=pytest.mark.slow)])
+@pytest.mark.parametrize("rounds", [4, pytest.param(50, marks=pytest.mark.slow)])
 def test_kill_during_writing_leaves_the_old_or_the_new_folder(tmp_path, finished, rounds):
     # kill -9 at a random moment of writing an --overwrite run, many times: the folder
     # must always read back complete, either the old run (4 iterations) or the new (3)
@@ -261,6 +261,7 @@ def test_kill_during_writing_leaves_the_old_or_the_new_folder(tmp_path, finished
             shutil.copytree(pristine, out)
         leftovers = [p.name for p in out.parent.iterdir() if p.name.startswith(".")]
         assert leftovers == [], leftovers
+    print(f"kill -9 while writing, {rounds} rounds: {outcomes}")
     assert outcomes["old"] + outcomes["new"] == rounds
 
 
@@ -380,3 +381,19 @@ def test_hand_made_checkpoint_is_one_line_naming_the_entry(tmp_path, finished, c
     err = refused(capsys, ["optimize", str(problem), "--out", str(out), "--resume", "--quiet"],
                   out, str(path), entry)
     assert "--overwrite" in err
+
+
+def test_compare_and_sweep_refuse_a_folder_being_written(tmp_path, capsys):
+    problem = tmp_path / "small.toml"
+    problem.write_text(SMALL)
+    study = tmp_path / "study.toml"
+    study.write_text('problem = "small.toml"\n[vary]\n"optimize.volume_fraction" = [0.3, 0.4]\n')
+    for argv, out in ((["compare", str(problem), "--directions", "+y"], tmp_path / "cmp"),
+                      (["sweep", str(study), "--workers", "1"], tmp_path / "sweep")):
+        with folder_lock(out):
+            t0 = time.perf_counter()
+            code = main([*argv, "--out", str(out), "--quiet"])
+            err = capsys.readouterr().err
+            assert code == 2 and time.perf_counter() - t0 < 5.0, err
+            assert "another buttress run" in err and len(err.strip().splitlines()) == 1
+        assert not out.exists()
