@@ -196,7 +196,7 @@ def compare(
         summaries[direction] = summary
         if progress:
             print(
-                f"compare: {direction:>4} done: compliance {summary['compliance']:.6g}, "
+                f"compare: {_label(direction):>4} done: compliance {summary['compliance']:.6g}, "
                 f"{summary['iterations']} iterations, {summary['elapsed_s']:.1f} s "
                 f"({len(summaries)}/{len(runs)}, {time.perf_counter() - t0:.0f} s so far)",
                 file=sys.stderr,
