@@ -14,8 +14,14 @@ import numpy as np
 from scipy import ndimage, sparse
 
 
-def hat_kernel(dim: int, *, radius: float, element_size: float) -> np.ndarray:
+def hat_kernel(dim: int, *, radius: float, element_size: float,
+               shape: tuple[int, ...] | None = None) -> np.ndarray:
     """Weights ``max(0, radius - distance)`` on the element lattice around the centre.
+
+    With ``shape`` (the grid the kernel is used on) the kernel reaches at most
+    ``shape[a] - 1`` elements along axis ``a``: farther weights would only ever meet
+    the zero padding, so the filter is unchanged and a radius far larger than the
+    domain costs no memory.
 
     Examples
     --------
@@ -26,10 +32,11 @@ def hat_kernel(dim: int, *, radius: float, element_size: float) -> np.ndarray:
         raise ValueError(f"radius must be > 0, got {radius!r}")
     if not element_size > 0:
         raise ValueError(f"element_size must be > 0, got {element_size!r}")
-    reach = int(np.ceil(radius / element_size)) - 1
+    reach = int(np.ceil(min(radius / element_size, 1e12))) - 1  # inf-safe
     reach = max(reach, 0)
-    offsets = np.arange(-reach, reach + 1) * element_size
-    grids = np.meshgrid(*([offsets] * dim), indexing="ij")
+    reaches = [reach] * dim if shape is None else [min(reach, int(n) - 1) for n in shape]
+    axes = [np.arange(-r, r + 1) * element_size for r in reaches]
+    grids = np.meshgrid(*axes, indexing="ij")
     dist = np.sqrt(sum(g**2 for g in grids))
     return np.maximum(0.0, radius - dist)
 
@@ -39,7 +46,8 @@ class DensityFilter:
 
     def __init__(self, shape: tuple[int, ...], *, radius: float, element_size: float):
         self.shape = tuple(shape)
-        self.kernel = hat_kernel(len(self.shape), radius=radius, element_size=element_size)
+        self.kernel = hat_kernel(len(self.shape), radius=radius, element_size=element_size,
+                                 shape=self.shape)
         self.weight_sum = self._convolve(np.ones(self.shape))
 
     def _convolve(self, x: np.ndarray) -> np.ndarray:

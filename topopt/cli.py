@@ -11,6 +11,7 @@ import argparse
 import importlib
 import os
 import sys
+import warnings
 
 #: Subcommand name -> module implementing it.
 COMMANDS: dict[str, str] = {
@@ -57,6 +58,9 @@ def build_parser() -> argparse.ArgumentParser:
         "physical tests.",
     )
     parser.add_argument("--version", action=_VersionAction)
+    parser.add_argument("--max-memory", default=None, metavar="GB",
+                        help="refuse runs whose memory estimate exceeds GB gigabytes "
+                             "(default: the machine's memory; also BUTTRESS_MAX_MEMORY)")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, module_name in COMMANDS.items():
         module = importlib.import_module(module_name)
@@ -98,8 +102,31 @@ def main(argv: list[str] | None = None) -> int:
     if not getattr(args, "_run", None):
         parser.print_help()
         return 2
+    from topopt.memory import ENV
+
+    saved_cap = os.environ.get(ENV)
+    with warnings.catch_warnings():
+        # a warning from the library is one line on stderr, like an error (the filters
+        # are left alone: the test run still turns warnings into errors)
+        warnings.showwarning = _show_warning
+        return _run(args, saved_cap)
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    print(f"buttress: warning: {_one_line(Exception(str(message)))}", file=sys.stderr)
+
+
+def _run(args: argparse.Namespace, saved_cap: str | None) -> int:
+    from topopt import interrupt
+    from topopt.memory import ENV, parse_gigabytes
+
     try:
-        return int(args._run(args) or 0)
+        # Ctrl-C and SIGTERM are recorded from here on, so none is lost (topopt.interrupt)
+        with interrupt.handlers():
+            if args.max_memory is not None:
+                # the environment carries the cap to worker processes too
+                os.environ[ENV] = str(parse_gigabytes(args.max_memory))
+            return int(args._run(args) or 0)
     except KeyboardInterrupt:
         print("buttress: interrupted", file=sys.stderr)
         return 130
@@ -108,6 +135,19 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"buttress: error: {_one_line(exc)}", file=sys.stderr)
         return 2
+    except (MemoryError, RecursionError) as exc:
+        # a last guard: the checks before work should have refused the input already
+        if os.environ.get("BUTTRESS_DEBUG"):
+            raise
+        what = "out of memory" if isinstance(exc, MemoryError) else "input nested too deeply"
+        print(f"buttress: error: {what} ({type(exc).__name__}); see --max-memory", file=sys.stderr)
+        return 2
+    finally:
+        if args.max_memory is not None:
+            if saved_cap is None:
+                os.environ.pop(ENV, None)
+            else:
+                os.environ[ENV] = saved_cap
 
 
 def _one_line(exc: BaseException) -> str:

@@ -237,8 +237,9 @@ def compare(
 
 
 def _load_density(folder: Path) -> np.ndarray:
-    with np.load(folder / "result.npz", allow_pickle=False) as data:
-        return np.array(data["density"])
+    from topopt.results import read_arrays
+
+    return read_arrays(folder / "result.npz", ["density"])["density"]
 
 
 def comparison_rows(runs, summaries: dict, densities: dict, problem) -> list[dict]:

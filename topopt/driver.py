@@ -20,9 +20,9 @@ import numpy as np
 from filters.chain import FilterChain, FixedValues
 from filters.density import density_filter
 from filters.projection import HeavisideProjection, heaviside_projection
-from topopt import robust
+from topopt import interrupt, robust
 from topopt.objective import ComplianceModel, grey_level, volume_fraction
-from topopt.optimizers import MMAComplianceUpdate, oc_update
+from topopt.optimizers import OPTIMIZERS, oc_update
 
 
 @dataclass(frozen=True, eq=False)
@@ -226,9 +226,14 @@ def optimize(
         holdable = problem.passive_solid & ~unholdable
         if holdable.any():
             keep_in = KeepInConstraint(chain, holdable)
+    # the update rule is found by name in the registry; an unknown name is an error
+    rule = OPTIMIZERS.get(settings.method)
+    if rule is None:
+        raise ValueError(f"{problem.path}: optimize.method: expected one of "
+                         f"{', '.join(sorted(OPTIMIZERS))}, got {settings.method!r}")
     updater = None
-    if settings.method == "mma":
-        updater = MMAComplianceUpdate(active, volume_fraction=settings.volume_fraction,
+    if rule is not oc_update:
+        updater = rule(active, volume_fraction=settings.volume_fraction,
                                       n_designs=len(chains), move=move_limit,
                                       extra_constraints=int(keep_in is not None))
 
@@ -267,8 +272,13 @@ def optimize(
     iteration = start_iteration
     try:
         while iteration < settings.max_iterations:
+            interrupt.check()  # a Ctrl-C that Python swallowed is honoured here
             physical = chain.forward(x)
             ev = model.evaluate(physical)
+            if not np.isfinite(ev.compliance):
+                raise ValueError(f"{problem.path}: the compliance became {ev.compliance} at "
+                                 f"iteration {iteration + 1}; check the magnitudes of loads, "
+                                 "material.youngs_modulus and domain.element_size")
             dc = chain.backward(ev.gradient)
             dv = chain.backward(unit_volume_gradient)
             vol = volume_fraction(physical)
@@ -276,59 +286,64 @@ def optimize(
             if len(chains) > 1:
                 # robust formulation: eroded, blueprint and dilated designs
                 compliances, gradients = _robust_designs(chains, model, x, ev, dc)
-            if updater is None:
-                x_new = oc_update(
-                    x, dc, dv, volume=vol, volume_fraction=settings.volume_fraction,
-                    move=move_limit, active=active,
-                )
-            else:
-                extra = []
+            # the update changes the optimiser's memory, the design, the count, the history
+            # and beta together: a signal inside waits for the end (a checkpoint never
+            # mixes two iterations)
+            with interrupt.deferred():
+                if updater is None:
+                    x_new = oc_update(
+                        x, dc, dv, volume=vol, volume_fraction=settings.volume_fraction,
+                        move=move_limit, active=active,
+                    )
+                else:
+                    extra = []
+                    if keep_in is not None:
+                        # tightened with the projection continuation: asked at once, MMA
+                        # gave up the stiffness to print the keep-in regions of a grey
+                        # design (wall bracket built along -x, measured); 0.8 / beta to 0.05
+                        beta = schedule.beta if schedule is not None else math.inf
+                        keep_in.tolerance = max(KEEP_IN_TOLERANCE, 0.8 / beta)
+                        extra = [(keep_in.value(), keep_in.gradient())]
+                    x_new = updater(x, compliances=compliances, gradients=gradients, volume=vol,
+                                    dv=dv, extra=extra)
+                change = float(np.max(np.abs(x_new - x)))
+                row = {
+                    "iteration": iteration + 1,
+                    "compliance": ev.compliance,
+                    "volume_fraction": vol,
+                    "change": change,
+                    "grey_level": grey_level(physical),
+                    "elapsed_s": time.perf_counter() - t0,
+                }
+                if len(chains) > 1:
+                    row["compliance_eroded"] = compliances[0]
+                    row["compliance_dilated"] = compliances[2]
+                if schedule is not None:
+                    row["beta"] = schedule.beta
+                if eta_finder is not None:
+                    row["eta"] = eta_finder.eta
                 if keep_in is not None:
-                    # tightened with the projection continuation: asked at once, MMA gave
-                    # up the stiffness to print the keep-in regions of a grey design
-                    # (wall bracket built along -x, measured); 0.8 / beta down to 0.05
-                    beta = schedule.beta if schedule is not None else math.inf
-                    keep_in.tolerance = max(KEEP_IN_TOLERANCE, 0.8 / beta)
-                    extra = [(keep_in.value(), keep_in.gradient())]
-                x_new = updater(x, compliances=compliances, gradients=gradients, volume=vol,
-                                dv=dv, extra=extra)
-            change = float(np.max(np.abs(x_new - x)))
-            x = x_new
-            iteration += 1
-            row = {
-                "iteration": iteration,
-                "compliance": ev.compliance,
-                "volume_fraction": vol,
-                "change": change,
-                "grey_level": grey_level(physical),
-                "elapsed_s": time.perf_counter() - t0,
-            }
-            if len(chains) > 1:
-                row["compliance_eroded"] = compliances[0]
-                row["compliance_dilated"] = compliances[2]
-            if schedule is not None:
-                row["beta"] = schedule.beta
-            if eta_finder is not None:
-                row["eta"] = eta_finder.eta
-            if keep_in is not None:
-                row["keep_in_unprinted"] = keep_in.shortfall()
-            history.append(row)
-            if bar is not None:
-                bar.update(1)
-                bar.set_postfix(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
-            # with continuation, only a still design at the final beta counts as converged
-            if change < settings.change_tolerance and (schedule is None or schedule.at_max):
-                converged = True
-                message = f"converged: largest design change {change:.4g} < {settings.change_tolerance}"
-                break
-            if schedule is not None and schedule.step(change=change):
-                set_beta(chains, schedule.beta)
-            if schedule is not None:
-                move_limit = damping.step(change, final=schedule.at_max)
-            if updater is not None:
-                updater.mma.move = move_limit
+                    row["keep_in_unprinted"] = keep_in.shortfall()
+                x = x_new
+                iteration += 1
+                history.append(row)
+                if bar is not None:
+                    bar.update(1)
+                    bar.set_postfix(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
+                # with continuation, only a still design at the final beta counts as converged
+                if change < settings.change_tolerance and (schedule is None or schedule.at_max):
+                    converged = True
+                    message = f"converged: largest design change {change:.4g} < {settings.change_tolerance}"
+                    break
+                if schedule is not None and schedule.step(change=change):
+                    set_beta(chains, schedule.beta)
+                if schedule is not None:
+                    move_limit = damping.step(change, final=schedule.at_max)
+                if updater is not None:
+                    updater.mma.move = move_limit
             if checkpoint is not None and iteration % settings.checkpoint_every == 0:
                 checkpoint(state(iteration))
+        interrupt.check()
     except KeyboardInterrupt:
         if checkpoint is not None:
             checkpoint(state(iteration))

@@ -1,7 +1,9 @@
 """Writers for the results folder: summary, arrays, history, picture, VTU.
 
 Every file is written atomically (to a temporary name in the same folder, then
-renamed), so an interrupted run never leaves a half-written result.
+renamed), and :mod:`topopt.results` writes the whole folder into a temporary sibling
+that is swapped in as one unit, so an interrupted run never leaves a half-written or
+half-replaced result.
 """
 
 from __future__ import annotations
@@ -92,32 +94,10 @@ def write_npz(path: str | Path, **arrays: np.ndarray) -> None:
 
 
 def summary_dict(result, problem) -> dict:
-    """The ``summary.json`` contents for a result of ``problem``."""
-    from topopt import __version__
+    """The ``summary.json`` contents for a result of ``problem`` (see :mod:`topopt.results`)."""
+    from topopt.results import summary_dict as _summary
 
-    summary = {
-        "name": problem.name,
-        "compliance": result.compliance,
-        "volume_fraction": result.volume_fraction,
-        "iterations": result.iterations,
-        "converged": result.converged,
-        "message": result.message,
-        "build_direction": problem.build.direction,
-        "overhang_angle": problem.build.overhang_angle,
-        "grey_level": result.grey_level,
-        "elapsed_s": result.elapsed_s,
-        "solver": result.solver,
-        "shape": list(problem.grid.shape),
-        "element_size": problem.grid.element_size,
-        "units": problem.units.name,
-        "version": __version__,
-        "caution": CAUTION,
-    }
-    # -- print-preparation fields (unsupported_elements, overhang_area) are added here --
-    summary.update(printability_summary(result.density, problem, result))
-    summary.update(length_scale_summary(result.density, problem))
-    summary.update(structural_summary_of(result.density, problem))
-    return summary
+    return _summary(result, problem)
 
 
 def structural_summary_of(density: np.ndarray, problem) -> dict:
@@ -215,33 +195,10 @@ def history_columns(history: Iterable[dict]) -> list[str]:
 
 
 def write_results(result, problem, out_dir: str | Path, *, formats: Iterable[str] | None = None) -> Path:
-    """Write the results folder of a run.
+    """Write the results folder of a run as one unit (see :func:`topopt.results.write_results`)."""
+    from topopt.results import write_results as _write
 
-    Parameters
-    ----------
-    result : Result
-        From :func:`topopt.optimize`.
-    problem : Problem
-        The problem that was solved; a copy is written as ``problem.toml``.
-    out_dir : str or Path
-        The folder (created if missing).
-    formats : iterable of str, optional
-        Pictures and meshes to write; default all that apply (``png``, ``vtu``, ``stl``).
-    """
-    from topopt.problem import to_toml
-
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    write_text(out / "problem.toml", to_toml(problem.source))
-    write_npz(out / "result.npz", density=result.density, design=result.design)
-    write_csv(out / "history.csv", result.history, history_columns(result.history))
-    formats = set(formats) if formats is not None else set(WRITERS)
-    for name, writer in WRITERS.items():
-        if name in formats:
-            writer(out / f"design.{name}", result.density, problem)
-    # summary last: its presence marks a finished run.
-    write_json(out / "summary.json", summary_dict(result, problem))
-    return out
+    return _write(result, problem, out_dir, formats=formats)
 
 
 def write_png(path: str | Path, density: np.ndarray, problem) -> None:
@@ -274,9 +231,10 @@ def write_png(path: str | Path, density: np.ndarray, problem) -> None:
         fig.legend(handles=legend_handles(direction=build.direction,
                                           keep_out=keep_out is not None),
                    loc="upper right", fontsize=7)
-    fig.suptitle(f"{problem.name}  (build direction {_direction_text(problem.build.direction)}"
+    name = problem.name if len(problem.name) <= 80 else problem.name[:77] + "..."
+    fig.suptitle(f"{name}  (build direction {_direction_text(problem.build.direction)}"
                  f" points up)" if problem.build.active
-                 else f"{problem.name}  (free: no build direction)", fontsize=9)
+                 else f"{name}  (free: no build direction)", fontsize=9)
     fig.text(0.01, 0.01, CAUTION, fontsize=5.5, wrap=True, color="0.35")
     atomic_write(path, lambda h: fig.savefig(h, format="png"))
     plt.close(fig)

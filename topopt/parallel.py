@@ -9,7 +9,10 @@ thread (see :func:`single_thread`), or the workers fight over the cores.
 from __future__ import annotations
 
 import contextlib
+import os
 import sys
+import threading
+import time
 from collections.abc import Callable, Iterable, Iterator
 from typing import Any
 
@@ -53,6 +56,37 @@ def workers_skip_main_script():
                 setattr(main, name, value)
 
 
+def die_with_parent(parent_pid: int) -> None:
+    """End this worker process when the process that started it ends, however it ends.
+
+    On Linux the kernel sends SIGKILL when the parent dies (``prctl(PR_SET_PDEATHSIG)``);
+    everywhere a watchdog thread also checks once a second whether the parent is still
+    the one that started the worker (a dead parent's children are adopted by another
+    process). Without this, workers of a killed ``sweep`` or ``compare`` computed on
+    and then sat idle.
+    """
+    import signal
+    import sys
+
+    if sys.platform.startswith("linux"):
+        with contextlib.suppress(Exception):
+            import ctypes
+
+            libc = ctypes.CDLL(None, use_errno=True)
+            pr_set_pdeathsig = 1
+            libc.prctl(pr_set_pdeathsig, int(signal.SIGKILL), 0, 0, 0)
+    if os.getppid() != parent_pid:  # the parent died before the line above
+        os._exit(1)
+
+    def watch() -> None:
+        while True:
+            time.sleep(1.0)
+            if os.getppid() != parent_pid:
+                os._exit(1)
+
+    threading.Thread(target=watch, name="die-with-parent", daemon=True).start()
+
+
 def process_map(
     func: Callable[..., Any], jobs: Iterable[tuple[Any, tuple, dict]], *, workers: int
 ) -> Iterator[tuple[Any, Any, BaseException | None]]:
@@ -71,7 +105,8 @@ def process_map(
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
-    pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
+    pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
+                               initializer=die_with_parent, initargs=(os.getpid(),))
     try:
         # Workers start as jobs are submitted (all of them here, before any result is
         # awaited); a function of the main script needs the script in the workers.

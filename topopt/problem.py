@@ -36,6 +36,13 @@ class Material:
     void_stiffness: float = 1e-9
     mass_density: float | None = None
 
+    def __post_init__(self) -> None:
+        _field_in(self, "youngs_modulus", 0.0, math.inf, low_open=True)
+        _field_in(self, "poisson_ratio", -1.0, 0.5, low_open=True, high_open=True)
+        _field_in(self, "void_stiffness", 0.0, 1.0, low_open=True, high_open=True)
+        if self.mass_density is not None:
+            _field_in(self, "mass_density", 0.0, math.inf, low_open=True)
+
 
 @dataclass(frozen=True)
 class Restraint:
@@ -84,6 +91,24 @@ class OptimizeSettings:
     checkpoint_every: int = 10
     projection: Projection | None = None
     min_member_size: float | None = None
+
+    def __post_init__(self) -> None:
+        _field_in(self, "volume_fraction", 0.0, 1.0, low_open=True, high_open=True)
+        _field_in(self, "filter_radius", 0.0, math.inf, low_open=True)
+        _field_in(self, "penalty", 1.0, 10.0)
+        _field_in(self, "max_iterations", 1, 100000, integer=True)
+        _field_in(self, "change_tolerance", 0.0, 1.0, low_open=True)
+        _field_in(self, "move_limit", 0.0, 1.0, low_open=True)
+        _field_in(self, "checkpoint_every", 1, math.inf, integer=True)
+        if self.min_member_size is not None:
+            _field_in(self, "min_member_size", 0.0, math.inf, low_open=True)
+        from topopt.optimizers import OPTIMIZERS
+
+        if self.method not in METHODS or self.method not in OPTIMIZERS:
+            raise ValueError(f"OptimizeSettings.method: expected one of "
+                             f"{', '.join(repr(m) for m in METHODS)}, got {self.method!r}")
+        if not isinstance(self.solver, str):
+            raise TypeError(f"OptimizeSettings.solver: expected a string, got {self.solver!r}")
 
 
 @dataclass(frozen=True)
@@ -185,9 +210,31 @@ class Problem:
     optimize: OptimizeSettings = field(repr=False)
     build: BuildSettings = field(default_factory=BuildSettings)
     process: ProcessSettings = field(default_factory=ProcessSettings)
-    source: Mapping = field(default_factory=dict, repr=False)
+    table: Mapping = field(default_factory=dict, repr=False)
     path: str = "<problem>"
     units: UnitSystem = field(default_factory=lambda: UNIT_SYSTEMS[DEFAULT_UNITS])
+
+    def __post_init__(self) -> None:
+        for name in ("passive_solid", "passive_void"):
+            mask = getattr(self, name)
+            if not isinstance(mask, np.ndarray) or mask.dtype != bool or mask.shape != self.grid.shape:
+                raise ValueError(f"Problem.{name}: expected a boolean array of shape "
+                                 f"{self.grid.shape}")
+        for name, kind in (("material", Material), ("optimize", OptimizeSettings),
+                           ("build", BuildSettings), ("process", ProcessSettings)):
+            if not isinstance(getattr(self, name), kind):
+                raise TypeError(f"Problem.{name}: expected a {kind.__name__}, got "
+                                f"{type(getattr(self, name)).__name__}")
+
+    @property
+    def source(self) -> dict:
+        """The problem as a table (the problem-file form), derived from the typed fields.
+
+        Starts from the table the problem was read from (so regions and keys keep their
+        spelling) and writes every typed setting that differs from it back, so a problem
+        changed with ``dataclasses.replace`` writes, digests and varies as it now is.
+        """
+        return problem_table(self)
 
     @property
     def load_cases(self) -> tuple[str, ...]:
@@ -362,6 +409,245 @@ def _list_of_tables(r: _Reader, data: Mapping, key: str) -> list[Mapping]:
     return value
 
 
+#: Longest ``name`` (it titles pictures and tables).
+MAX_NAME = 1000
+#: Deepest nesting of tables and lists a problem or study file may have.
+MAX_DEPTH = 32
+#: Scales (force, stiffness, lengths and their products) must lie within
+#: [1 / MAGNITUDE, MAGNITUDE]: far inside the double range (about 1e+-308), so sums over
+#: millions of elements, squares and the solvers' intermediate values stay finite and
+#: keep their precision (common practice: keep magnitudes well away from the limits).
+MAGNITUDE = 1e100
+
+
+def _field_in(obj, name: str, low, high, *, low_open: bool = False, high_open: bool = False,
+              integer: bool = False) -> None:
+    """Check one typed field on construction: ValueError / TypeError naming it."""
+    value = getattr(obj, name)
+    label = f"{type(obj).__name__}.{name}"
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
+        raise TypeError(f"{label}: expected a number, got {value!r}")
+    if integer and not float(value).is_integer():
+        raise TypeError(f"{label}: expected a whole number, got {value!r}")
+    bad = (not math.isfinite(value) or (value <= low if low_open else value < low)
+           or (value >= high if high_open else value > high))
+    if bad:
+        raise ValueError(f"{label}: expected a number in {'(' if low_open else '['}{low}, "
+                         f"{high}{')' if high_open else ']'}, got {value!r}")
+
+
+def _plain(value: Any) -> Any:
+    """Tuples as lists and numpy scalars as Python numbers (TOML data)."""
+    if isinstance(value, (tuple, list)):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
+
+
+def _put(table: dict, key: str, value: Any, default: Any = ...) -> None:
+    """Write a typed value into a table when it differs from what the table says."""
+    value = _plain(value)
+    if key in table:
+        if table[key] != value:
+            table[key] = value
+    elif default is ... or value != _plain(default):
+        table[key] = value
+
+
+def problem_table(problem: Problem) -> dict:
+    """The problem-file table of ``problem``, derived from its typed fields.
+
+    Examples
+    --------
+    >>> # problem_table(dataclasses.replace(p, name="b"))["name"]
+    """
+    data = copy.deepcopy(dict(problem.table))
+    grid = problem.grid
+    _put(data, "name", problem.name, Path(problem.path).stem)
+    _put(data, "units", problem.units.name, DEFAULT_UNITS)
+    dom = data.setdefault("domain", {})
+    _put(dom, "shape", list(grid.shape))
+    _put(dom, "element_size", grid.element_size)
+    if grid.dim == 2:
+        _put(dom, "thickness", grid.thickness, 1.0)
+    mat = data.setdefault("material", {})
+    for key, default in (("youngs_modulus", ...), ("poisson_ratio", ...),
+                         ("void_stiffness", 1e-9), ("mass_density", None)):
+        value = getattr(problem.material, key)
+        if value is None:
+            mat.pop(key, None)
+        else:
+            _put(mat, key, value, default)
+    # regions stay as the table gives them (their nodes are found from it when loading)
+    restraints = []
+    for rr, table in zip(problem.restraints, _tables(data, "restraints", len(problem.restraints)),
+                         strict=True):
+        table = dict(table)
+        _put(table, "fix", list(rr.fix), list(AXES[:grid.dim]))
+        restraints.append(table)
+    data["restraints"] = restraints
+    loads = []
+    for load, table in zip(problem.loads, _tables(data, "loads", len(problem.loads)), strict=True):
+        table = dict(table)
+        _put(table, "force", list(load.force))
+        _put(table, "case", load.case, "default")
+        loads.append(table)
+    data["loads"] = loads
+    opt = data.setdefault("optimize", {})
+    settings = problem.optimize
+    radius_default = 1.5 * grid.element_size
+    method_default = "mma" if problem.build.active else "oc"  # as the reader chooses
+    for key, default in (("volume_fraction", ...), ("penalty", 3.0), ("method", method_default),
+                         ("max_iterations", 200), ("change_tolerance", 0.01),
+                         ("solver", "auto"), ("checkpoint_every", 10)):
+        _put(opt, key, getattr(settings, key), default)
+    if settings.min_member_size is None:
+        opt.pop("min_member_size", None)
+        _put(opt, "filter_radius", settings.filter_radius, radius_default)
+    else:
+        _put(opt, "min_member_size", settings.min_member_size)
+    # the projection the reader adds by itself with a build direction (see problem_from_dict)
+    implied = (Projection(every=DEFAULT_BETA_EVERY, beta_max=DEFAULT_BETA_MAX)
+               if problem.build.active and settings.min_member_size is None else None)
+    if settings.projection is None:
+        opt.pop("projection", None)
+    elif "projection" not in opt and settings.projection == implied:
+        pass
+    else:
+        pt = opt.setdefault("projection", {})
+        defaults = Projection()
+        for key in Projection.__dataclass_fields__:
+            _put(pt, key, getattr(settings.projection, key), getattr(defaults, key))
+    _put(opt, "move_limit", settings.move_limit, _default_move_limit(problem.build, opt))
+    bt = data.get("build", {})
+    for key, default in (("direction", "none"), ("overhang_angle", 45.0), ("plate_offset", 0.0),
+                         ("keep_in", "held")):
+        _put(bt, key, getattr(problem.build, key), default)
+    if bt:
+        data["build"] = bt
+    pr = data.get("process", {})
+    defaults = ProcessSettings.defaults_for(problem.units)
+    for key in ProcessSettings.__dataclass_fields__:
+        _put(pr, key, getattr(problem.process, key), getattr(defaults, key))
+    if pr:
+        data["process"] = pr
+    return data
+
+
+def _tables(data: Mapping, key: str, n: int) -> list[Mapping]:
+    items = data.get(key, [])
+    items = list(items) if isinstance(items, list) else []
+    return (items + [{}] * n)[:n]
+
+
+def _warn_cut_load_paths(r: _Reader, grid: Grid, void: np.ndarray, restraints, loads) -> None:
+    """Warn when passive void separates a load from every restraint.
+
+    Elements outside passive void that share a node form one piece; a load on a piece
+    with no restrained node can only be carried by the void stiffness, so the run ends
+    with an enormous compliance. Valid input, but worth a line (a warning, not an error).
+    """
+    import warnings
+
+    from scipy import ndimage
+
+    if not void.any():
+        return
+    pieces, count = ndimage.label(~void, structure=np.ones((3,) * grid.dim, dtype=bool))
+    if count <= 1:
+        return
+    node_piece = np.zeros(grid.n_nodes, dtype=np.int64)
+    node_piece[grid.element_nodes.reshape(-1)] = np.repeat(pieces.ravel(), grid.element_nodes.shape[1])
+    anchored = set(np.unique(node_piece[np.concatenate([rr.nodes for rr in restraints])]).tolist())
+    anchored.discard(0)
+    for i, load in enumerate(loads):
+        loaded = set(np.unique(node_piece[load.nodes]).tolist()) - {0}
+        if loaded and not loaded & anchored:
+            warnings.warn(f"{r.source}: loads[{i}].where: passive void cuts this load off from "
+                          "every restraint; only the void stiffness can carry it, so the "
+                          "compliance will be enormous (check the [[passive]] regions)",
+                          UserWarning, stacklevel=3)
+
+
+def _check_budget(r: _Reader, data: Mapping, grid: Grid) -> None:
+    """Refuse a problem whose memory estimate exceeds the cap (topopt.memory)."""
+    from topopt.memory import check_memory
+
+    opt = data.get("optimize") if isinstance(data.get("optimize"), Mapping) else {}
+    radius = 1.5 * grid.element_size
+    for key in ("filter_radius", "min_member_size"):
+        value = opt.get(key)
+        if isinstance(value, (int, float)) and not isinstance(value, bool) and value > 0:
+            radius = max(radius, float(value))
+    solver = opt.get("solver") if isinstance(opt.get("solver"), str) else "auto"
+    try:
+        check_memory(grid.shape, filter_radius=radius, element_size=grid.element_size,
+                     solver=solver, source=r.source)
+    except ValueError as exc:
+        raise ProblemError(str(exc)) from None
+
+
+def _check_magnitudes(r: _Reader, grid: Grid, material: Material, loads) -> None:
+    """Every scale of the model representable: refuse absurd numbers before any work.
+
+    Checked: element size and the element volume, Young's modulus and the void
+    stiffness, each force, the stiffness of one element (E h, or E t in 2D), and the
+    displacement and compliance a force would give on one element of solid and of void.
+    """
+    low, high = 1.0 / MAGNITUDE, MAGNITUDE
+    t = grid.thickness if grid.dim == 2 else grid.element_size
+    log = math.log10
+
+    def within(value_log: float) -> bool:
+        return log(low) <= value_log <= log(high)
+
+    h, E = grid.element_size, material.youngs_modulus
+    checks = [
+        ("domain.element_size", log(h), f"{h!r}"),
+        ("domain.element_size", grid.dim * log(h) + (log(t) if grid.dim == 2 else 0.0),
+         "an element volume of 1e%.0f"),
+        ("material.youngs_modulus", log(E), f"{E!r}"),
+        ("material.youngs_modulus", log(E) + log(t), "an element stiffness of 1e%.0f"),
+        ("material.void_stiffness", log(E) + log(t) + log(material.void_stiffness),
+         "a void stiffness of 1e%.0f"),
+    ]
+    if grid.dim == 2:
+        checks.append(("domain.thickness", log(t), f"{t!r}"))
+    for i, load in enumerate(loads):
+        size = max(abs(f) for f in load.force)
+        if size == 0:
+            continue  # reported below as a zero force
+        k = log(E) + log(t)
+        checks += [
+            (f"loads[{i}].force", log(size), f"{size!r}"),
+            (f"loads[{i}].force", log(size) - k, "a displacement of order 1e%.0f"),
+            (f"loads[{i}].force", 2 * log(size) - k - log(material.void_stiffness),
+             "a compliance of order 1e%.0f on void"),
+            (f"loads[{i}].force", 2 * log(size) - k, "a compliance of order 1e%.0f"),
+        ]
+    for key, value_log, what in checks:
+        if not within(value_log):
+            shown = what % value_log if "%" in what else what
+            raise r.fail(key, f"{shown} is outside [1e-100, 1e100] with the other values "
+                         "(element_size, youngs_modulus, void_stiffness, force); use units "
+                         "that keep the numbers moderate")
+
+
+def _check_depth(data: Any, source: str, *, error: type[ValueError] | None = None) -> None:
+    """Refuse tables and lists nested deeper than :data:`MAX_DEPTH` (iteratively)."""
+    stack = [(data, 0)]
+    while stack:
+        value, depth = stack.pop()
+        if depth > MAX_DEPTH:
+            raise (error or ProblemError)(f"{source}: nested deeper than {MAX_DEPTH} levels of "
+                                          "tables or lists")
+        if isinstance(value, Mapping):
+            stack.extend((v, depth + 1) for v in value.values())
+        elif isinstance(value, list):
+            stack.extend((v, depth + 1) for v in value)
+
+
 TOP_KEYS = {"name", "units", "domain", "material", "restraints", "loads", "passive", "optimize",
             "build", "process"}
 OPTIMIZE_KEYS = {
@@ -402,10 +688,13 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
     r = _Reader(source)
     if not isinstance(data, Mapping):
         raise r.fail("(top level)", "expected a TOML document")
+    _check_depth(data, source)
     r.no_unknown(data, "", TOP_KEYS)
     name = r.string(data, "name", "name", default=Path(source).stem)
     units = UNIT_SYSTEMS[r.string(data, "units", "units", default=DEFAULT_UNITS,
                                   choices=tuple(UNIT_SYSTEMS))]
+    if len(name) > MAX_NAME:
+        raise r.fail("name", f"expected at most {MAX_NAME} characters, got {len(name)}")
 
     dom = r.table(data, "domain", {"shape", "element_size", "thickness"})
     shape_raw = dom.get("shape")
@@ -417,14 +706,15 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         raise r.fail("domain.shape", f"expected 2 or 3 whole numbers such as [120, 60], got {shape_raw!r}")
     if any(n < 1 for n in shape_raw):
         raise r.fail("domain.shape", f"expected positive element counts, got {shape_raw!r}")
-    if int(np.prod(shape_raw)) > 50_000_000:
-        raise r.fail("domain.shape", f"expected at most 5e7 elements, got {int(np.prod(shape_raw))}")
+    if math.prod(shape_raw) > 50_000_000:  # Python integers: no wrap-round
+        raise r.fail("domain.shape", f"expected at most 5e7 elements, got {math.prod(shape_raw)}")
     dim = len(shape_raw)
     h = r.number(dom, "element_size", "domain.element_size", low=0.0, low_open=True)
     if dim == 3 and "thickness" in dom:
         raise r.fail("domain.thickness", "only 2D domains take a thickness")
     thickness = r.number(dom, "thickness", "domain.thickness", default=1.0, low=0.0, low_open=True)
     grid = Grid(tuple(shape_raw), h, thickness)
+    _check_budget(r, data, grid)
 
     mat = r.table(data, "material", {"youngs_modulus", "poisson_ratio", "void_stiffness", "mass_density"})
     material = Material(
@@ -436,6 +726,8 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         mass_density=r.number(mat, "mass_density", "material.mass_density", default=None,
                               low=0.0, low_open=True),
     )
+
+    _check_magnitudes(r, grid, material, ())  # before any region is selected
 
     restraints = []
     items = _list_of_tables(r, data, "restraints")
@@ -502,6 +794,8 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
             void |= mask
             solid &= ~mask
 
+    _check_magnitudes(r, grid, material, loads)
+
     # A load on nodes that touch only passive void would act on nothing.
     touches_material = np.zeros(grid.n_nodes, dtype=bool)
     touches_material[grid.element_nodes[~void.ravel()].ravel()] = True
@@ -509,6 +803,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         if not touches_material[load.nodes].all():
             raise r.fail(f"loads[{i}].where", "selects nodes surrounded by passive void; "
                          "the load would act on nothing (move it onto material)")
+    _warn_cut_load_paths(r, grid, void, restraints, loads)
     # A load that does no work leaves compliance at zero: nothing to optimise.
     restrained = np.zeros(grid.n_dofs, dtype=bool)
     for rr in restraints:
@@ -634,7 +929,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
     return Problem(
         name=name, grid=grid, material=material, restraints=tuple(restraints),
         loads=tuple(loads), passive_solid=solid, passive_void=void, optimize=optimize,
-        build=build, process=process, source=copy.deepcopy(dict(data)), path=source,
+        build=build, process=process, table=copy.deepcopy(dict(data)), path=source,
         units=units,
     )
 
@@ -743,9 +1038,13 @@ def read_toml(path: Path, *, what: str, error: type[ValueError] = ProblemError) 
     except OSError as exc:
         raise error(f"{path}: cannot be read ({exc.strerror})") from None
     try:
-        return tomllib.loads(text)
+        data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise error(f"{path}: not valid TOML ({exc})") from None
+    except RecursionError:
+        raise error(f"{path}: nested deeper than {MAX_DEPTH} levels of tables or lists") from None
+    _check_depth(data, str(path), error=error)
+    return data
 
 
 def load_problem(path: str | Path) -> Problem:

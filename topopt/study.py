@@ -24,9 +24,10 @@ told apart:
 Every case goes to ``OUT/cases/<case-id>/``, a results folder as written by
 ``buttress optimize``. The case id is a readable prefix made of the varied values plus a
 hash of the case's complete problem table, so the same problem always lands in the same
-folder. A case whose ``summary.json`` exists is not run again: rerunning a study after a
-crash finishes only the missing cases, and adding values to a study reuses the cases
-already done. Cases that failed are tried again on the next run.
+folder. A case whose results folder is complete and readable is not run again:
+rerunning a study after a crash finishes only the missing cases, and adding values to a
+study reuses the cases already done. Cases that failed, and finished cases whose files
+are damaged, are run again on the next run.
 
 ``OUT/table.csv`` has one row per case in study order: ``case``, one column per varied
 key, ``status`` (``ok`` / ``failed``), ``error``, ``compliance``, ``volume_fraction``,
@@ -202,7 +203,8 @@ def _study_from_dict(data: Mapping, *, source: str, base_dir: Path) -> Study:
         if mode == "product":  # paired (zip) lists may repeat a value
             seen = []
             for v in values:
-                if any(v == s and type(v) is type(s) for s in seen):
+                # 2 and 2.0 are one number (and one case); true is not 1
+                if any(v == s and isinstance(v, bool) == isinstance(s, bool) for s in seen):
                     raise fail(f"vary.{key}", f"the value {_display(v)} appears twice")
                 seen.append(v)
         if key in fixed:
@@ -279,14 +281,27 @@ def case_id(problem_table: Mapping, settings: Mapping) -> str:
     >>> case_id({"build": {"direction": "+y"}}, {"build.direction": "+y"})[:3]
     'py-'
     """
-    text = json.dumps(problem_table, sort_keys=True, default=repr, separators=(",", ":"))
+    text = json.dumps(_same_numbers(problem_table), sort_keys=True, default=repr,
+                      separators=(",", ":"))
     digest = hashlib.sha256(text.encode("utf-8")).hexdigest()[:10]
     parts = [_slug(v) for v in settings.values()]
     prefix = "_".join(p for p in parts if p)[:48].strip("_.")
     return f"{prefix}-{digest}" if prefix else digest
 
 
+def _same_numbers(value: Any) -> Any:
+    """Write whole floats as integers (2.0 -> 2), so values naming one number hash alike."""
+    if isinstance(value, Mapping):
+        return {k: _same_numbers(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_same_numbers(v) for v in value]
+    if isinstance(value, float) and value.is_integer() and abs(value) < 2**53:
+        return int(value)
+    return value
+
+
 def _slug(value: Any) -> str:
+    value = _same_numbers(value)
     if isinstance(value, list):
         return "x".join(_slug(v) for v in value)
     text = str(value).lower() if isinstance(value, bool) else str(value)
@@ -359,6 +374,17 @@ def _run_pool(cases: list[Case], workers: int) -> Iterator[tuple[Case, dict]]:
         yield case, payload
 
 
+def _private_security():
+    """A throw-away TLS certificate shared only by this process and its own workers."""
+    try:
+        from distributed.security import Security
+
+        return Security.temporary()
+    except ImportError:
+        raise ValueError("--dask needs the 'cryptography' package for a private cluster; "
+                         "install it with pip install 'buttress[cluster]'") from None
+
+
 def _run_dask(
     cases: list[Case], *, scheduler: str | None, workers: int
 ) -> Iterator[tuple[Case, dict]]:
@@ -370,14 +396,17 @@ def _run_dask(
     cluster = None
     try:
         if scheduler is None:
-            # Loopback only: the local cluster is never reachable from other machines.
+            # Loopback only, and mutual TLS with a certificate made for this run: other
+            # processes on this machine cannot connect to the scheduler or the workers.
             from topopt.parallel import workers_skip_main_script
 
+            security = _private_security()
             # the workers need topopt only, not the caller's script (see the helper)
             with workers_skip_main_script():
                 cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                       host="127.0.0.1", dashboard_address=None)
-            client = Client(cluster)
+                                       host="127.0.0.1", dashboard_address=None,
+                                       protocol="tls://", security=security)
+            client = Client(cluster, security=security)
         else:
             try:
                 client = Client(scheduler, timeout=15)
@@ -453,6 +482,16 @@ def run(
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise ValueError(f"{out}: exists and is not a folder")
+    from topopt.results import check_writable, folder_lock
+
+    check_writable(out)
+    with folder_lock(out):  # a second sweep into the same folder is refused at once
+        return _run_study(st, out, workers=workers, scheduler=scheduler, dask=dask,
+                          progress=progress)
+
+
+def _run_study(st: Study, out: Path, *, workers: int | None, scheduler: str | None,
+               dask: bool, progress: bool) -> list[dict]:
     cases_dir = out / "cases"
     cases_dir.mkdir(parents=True, exist_ok=True)
 
@@ -465,9 +504,10 @@ def run(
         folder = cases_dir / case.case_id
         if case.problem is None:
             rows[case.index] = _failed_row(st, case, case.error)
-        elif (folder / "summary.json").exists():
+        elif (folder / "summary.json").exists() and _finished(folder, case.problem):
             rows[case.index] = case_row(st, case, folder)
         else:
+            # missing, or finished but damaged (unreadable summary or arrays): run again
             # The case's problem file first, so any case can be rerun by hand.
             write_text(folder / "problem.toml", to_toml(case.problem.source))
             pending.append(case)
@@ -545,13 +585,24 @@ def _failed_row(st: Study, case: Case, error: str) -> dict:
     return row
 
 
+def _finished(folder: Path, problem: Problem) -> bool:
+    """Whether a case folder holds a complete, readable result of ``problem``."""
+    from topopt.results import check_finished
+
+    try:
+        check_finished(folder, problem)
+    except (ValueError, OSError):
+        return False
+    return True
+
+
 def case_row(st: Study, case: Case, folder: Path) -> dict:
     """Read the table row of a finished case back from its results folder."""
     row = _blank_row(st, case)
+    from topopt.results import read_summary
+
     try:
-        summary = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
-        if not isinstance(summary, dict):
-            raise ValueError("not a JSON object")
+        summary = read_summary(folder)
     except (OSError, ValueError) as exc:
         row.update(status="failed", error=f"unreadable summary.json ({_one_line(exc)})")
         return row
@@ -578,10 +629,12 @@ def print_figures(problem: Problem, folder: Path) -> dict:
         return blank
     import numpy as np
 
+    from topopt.results import read_arrays
+
     try:
-        with np.load(folder / "result.npz", allow_pickle=False) as data:
-            density = np.asarray(data["density"], dtype=float)
-    except (OSError, KeyError, ValueError):
+        density = np.asarray(read_arrays(folder / "result.npz", ["density"])["density"],
+                             dtype=float)
+    except (OSError, ValueError):
         return blank
     grid = problem.grid
     process = {k: getattr(problem.process, k) for k in problem.process.__dataclass_fields__}

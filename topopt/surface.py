@@ -8,6 +8,7 @@ Coordinates follow the grid convention: element ``[i, j, k]`` spans
 
 from __future__ import annotations
 
+import math
 import os
 from pathlib import Path
 
@@ -600,12 +601,16 @@ def voxelize(
         raise ValueError("the mesh has no faces")
     low = vertices.min(axis=0) if origin is None else np.asarray(origin, dtype=float)
     if shape is None:
-        extent = vertices.max(axis=0) - low
-        shape = tuple(int(max(1, np.ceil(e / h - 1e-9))) for e in extent)
+        with np.errstate(over="ignore"):
+            cells = (vertices.max(axis=0) - low) / h
+        if not np.all(np.isfinite(cells)) or cells.max() > max_voxels:
+            raise ValueError(f"element_size {h} gives more than the limit of {max_voxels} "
+                             "voxels for the extent of the surface")
+        shape = tuple(int(max(1, np.ceil(e - 1e-9))) for e in cells)
     shape = tuple(int(s) for s in shape)
     if len(shape) != 3 or min(shape) < 1:
         raise ValueError(f"shape must be three positive integers, got {shape}")
-    if int(np.prod(shape, dtype=np.int64)) > max_voxels:
+    if math.prod(shape) > max_voxels:  # Python integers: no wrap-round
         raise ValueError(
             f"element_size {h} gives {shape} voxels, more than the limit of {max_voxels}"
         )

@@ -30,34 +30,17 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``buttress export``."""
-    import numpy as np
-
     from topopt.export import WRITERS
-    from topopt.problem import load_problem
+    from topopt.results import read_results
     from topopt.surface import write_design_stl
 
     folder = Path(args.result)
-    if not folder.is_dir() or not (folder / "result.npz").is_file():
-        raise ValueError(f"{folder}: not a results folder (no result.npz)")
-    if not (folder / "problem.toml").is_file():
-        raise ValueError(f"{folder}: the results folder has no problem.toml")
     if args.smooth < 0:
         raise ValueError(f"--smooth must be >= 0, got {args.smooth}")
     if args.smooth and args.format != "stl":
         raise ValueError("--smooth applies to --format stl only")
-    problem = load_problem(folder / "problem.toml")
-    try:
-        with np.load(folder / "result.npz", allow_pickle=False) as data:
-            if "density" not in data.files:
-                raise ValueError(f"{folder}/result.npz: no array named 'density'")
-            density = np.asarray(data["density"], dtype=float)
-    except (OSError, EOFError) as exc:
-        raise ValueError(f"{folder}/result.npz: not readable ({exc})") from None
-    if density.shape != tuple(problem.grid.shape):
-        raise ValueError(f"{folder}/result.npz: density shape {density.shape} does not match "
-                         f"the problem grid {tuple(problem.grid.shape)}")
-    if not np.all(np.isfinite(density)):
-        raise ValueError(f"{folder}/result.npz: the density holds NaN or infinite values")
+    loaded = read_results(folder, need_summary=False)
+    problem, density = loaded.problem, loaded.density
     out = Path(args.out) if args.out else folder / f"design.{args.format}"
     if out.suffix.lower() != f".{args.format}":
         raise ValueError(f"{out}: the file name must end in .{args.format}")

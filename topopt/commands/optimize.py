@@ -1,22 +1,22 @@
 """Optimise a problem file and write a results folder.
 
-The folder gets summary.json, result.npz, history.csv, problem.toml and pictures. A
-checkpoint is saved every few iterations and on Ctrl-C or SIGTERM, so an interrupted
-run continues with --resume.
+The folder gets summary.json, result.npz, history.csv, problem.toml and pictures, and
+is swapped in as one unit when the run ends (a folder is never half old, half new). A
+second run into the same folder is refused at once. A checkpoint is saved every few
+iterations and on Ctrl-C or SIGTERM, so an interrupted run continues with --resume.
 """
 
 from __future__ import annotations
 
 import argparse
 import hashlib
-import signal
 import sys
 from pathlib import Path
 
-import numpy as np
+from topopt.problem import load_problem
+from topopt.results import CHECKPOINT, load_checkpoint, save_checkpoint
 
 HELP = "optimise a problem file into a results folder"
-CHECKPOINT = "checkpoint.npz"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -39,90 +39,49 @@ def problem_digest(problem) -> str:
     return hashlib.sha256(to_toml(problem.source).encode()).hexdigest()[:16]
 
 
-def save_checkpoint(path: Path, state: dict, digest: str) -> None:
-    """Write the loop state as plain arrays (no pickled objects)."""
-    from topopt.export import history_columns, write_npz
-
-    history = state["history"]
-    columns = history_columns(history)
-    table = np.array([[row.get(c, np.nan) for c in columns] for row in history], dtype=float)
-    extra = {k: np.asarray(v) for k, v in state.items() if k not in ("design", "history")}
-    write_npz(path, design=state["design"], history=table.reshape(len(history), len(columns)),
-              history_columns=np.array(columns, dtype=str), problem_digest=np.array(digest), **extra)
-
-
-def load_checkpoint(path: Path, digest: str) -> dict:
-    """Read a checkpoint written by :func:`save_checkpoint`; check it belongs to the problem."""
-    import zipfile
-
-    try:
-        # Our own handle: np.load leaks the one it opens when the zip is damaged.
-        with open(path, "rb") as handle, np.load(handle, allow_pickle=False) as data:
-            saved = {k: data[k] for k in data.files}
-    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
-        # A truncated or emptied file (e.g. a full disk) must not end in a traceback.
-        raise ValueError(f"{path}: not a readable checkpoint ({exc or type(exc).__name__}); "
-                         "start again with --overwrite") from None
-    if str(saved.get("problem_digest")) != digest:
-        raise ValueError(f"{path}: the checkpoint belongs to a different problem; "
-                         "start again with --overwrite")
-    if "history_columns" not in saved or "history" not in saved or "design" not in saved:
-        raise ValueError(f"{path}: not a readable checkpoint (entries missing); "
-                         "start again with --overwrite")
-    columns = [str(c) for c in saved.pop("history_columns")]
-    rows = saved.pop("history")
-    state = {k: (v if v.ndim else v.item()) for k, v in saved.items() if k != "problem_digest"}
-    state["history"] = [
-        {c: (int(v) if c == "iteration" else float(v)) for c, v in zip(columns, row, strict=True)}
-        for row in rows
-    ]
-    return state
-
-
 def run(args: argparse.Namespace) -> int:
     """Run ``buttress optimize``."""
     from topopt import optimize
-    from topopt.export import write_results
-    from topopt.problem import load_problem
+    from topopt.results import folder_lock, prepare_output, write_results
 
-    problem = load_problem(args.problem)  # validate before touching the results folder
+    problem = load_problem(args.problem)  # validate (and budget memory) before the folder
+    if args.solver is not None:
+        from topopt.solvers import SOLVERS
+
+        if args.solver not in set(SOLVERS) | {"auto"}:
+            raise ValueError(f"--solver: expected one of {', '.join(sorted(SOLVERS))} or auto, "
+                             f"got {args.solver!r}")
     out = Path(args.out)
-    if out.exists() and not out.is_dir():
-        raise ValueError(f"{out}: exists and is not a folder")
     digest = problem_digest(problem)
     checkpoint_path = out / CHECKPOINT
-    resume = None
-    if args.resume:
-        if checkpoint_path.exists():
-            resume = load_checkpoint(checkpoint_path, digest)
-        elif (out / "summary.json").exists():
-            print(f"{out}: the run has already finished; nothing to resume")
-            return 0
-        elif not args.quiet:
-            print(f"{out}: no checkpoint found; starting from the beginning")
-    elif (out / "summary.json").exists() and not args.overwrite:
-        raise ValueError(f"{out}: holds results already; use --overwrite, --resume or another --out")
-    elif checkpoint_path.exists() and not args.overwrite:
-        raise ValueError(f"{out}: holds an interrupted run; use --resume, --overwrite or another --out")
+    # a second run into the same folder is refused here, at once
+    with folder_lock(out):
+        state = prepare_output(out, overwrite=args.overwrite, resume=args.resume)
+        resume = None
+        if args.resume:
+            if checkpoint_path.exists():
+                resume = load_checkpoint(checkpoint_path, digest, shape=problem.grid.shape,
+                                         max_iterations=problem.optimize.max_iterations)
+            elif state == "finished":
+                print(f"{out}: the run has already finished; nothing to resume")
+                return 0
+            elif not args.quiet:
+                print(f"{out}: no checkpoint found; starting from the beginning")
 
-    out.mkdir(parents=True, exist_ok=True)
+        out.mkdir(parents=True, exist_ok=True)
 
-    def checkpoint(state: dict) -> None:
-        save_checkpoint(checkpoint_path, state, digest)
+        def checkpoint(loop_state: dict) -> None:
+            save_checkpoint(checkpoint_path, loop_state, digest)
 
-    previous = signal.getsignal(signal.SIGTERM)
-    signal.signal(signal.SIGTERM, _raise_interrupt)
-    try:
-        result = optimize(problem, progress=not args.quiet, resume=resume, checkpoint=checkpoint,
-                          solver=args.solver)
-    except KeyboardInterrupt:
-        print(f"buttress: interrupted; state saved, continue with: buttress optimize "
-              f"{args.problem} --out {out} --resume", file=sys.stderr)
-        return 130
-    finally:
-        signal.signal(signal.SIGTERM, previous)
-    write_results(result, problem, out)
-    checkpoint_path.unlink(missing_ok=True)
+        try:
+            result = optimize(problem, progress=not args.quiet, resume=resume,
+                              checkpoint=checkpoint, solver=args.solver)
+            # one unit: the new folder (without the checkpoint) replaces the old one
+            write_results(result, problem, out)
+        except KeyboardInterrupt:
+            print(f"buttress: interrupted; state saved, continue with: buttress optimize "
+                  f"{args.problem} --out {out} --resume", file=sys.stderr)
+            return 130
     if result.unholdable_keep_in:
         print(f"note: {result.unholdable_keep_in} keep-in elements cannot be held up by any "
               "design in this domain (kept-empty space or the domain edge below, no room for "
@@ -132,7 +91,3 @@ def run(args: argparse.Namespace) -> int:
               f"{result.volume_fraction:.4f}, {result.iterations} iterations, {result.elapsed_s:.1f} s")
         print(f"results: {out}/summary.json, picture: {out}/design.png")
     return 0
-
-
-def _raise_interrupt(signum, frame):
-    raise KeyboardInterrupt

@@ -1,0 +1,399 @@
+"""The results folder as one unit: swap, lock, refusals, damaged files, checkpoints.
+
+Sources
+-------
+- Results-folder contract: DESIGN.md ("Results folder") and issue 15 ("the folder is
+  either the complete old one or the complete new one", "two concurrent runs: one is
+  refused at once").
+- Atomic replacement by rename / exchange of a directory entry: POSIX rename(2) and Linux
+  renameat2(2) RENAME_EXCHANGE (man-pages); advisory locks: flock(2). Common practice.
+- NumPy file format (magic, header, data): NEP 1, "A simple file format for NumPy arrays".
+"""
+
+from __future__ import annotations
+
+import os
+import random
+import shutil
+import signal
+import subprocess
+import sys
+import time
+import zipfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from topopt.cli import main
+from topopt.results import (
+    ResultsError,
+    folder_lock,
+    load_checkpoint,
+    read_arrays,
+    read_results,
+    save_checkpoint,
+)
+
+ROOT = Path(__file__).resolve().parents[2]
+
+SMALL = """\
+name = "small plate (invented)"
+
+[domain]
+shape = [20, 10]
+element_size = 1.0
+
+[material]
+youngs_modulus = 1000.0
+poisson_ratio = 0.3
+
+[[restraints]]
+where = { x = [0.0, 0.0] }
+
+[[loads]]
+where = { x = [20.0, 20.0], y = [0.0, 0.0] }
+force = [0.0, -1.0]
+
+[optimize]
+volume_fraction = 0.4
+max_iterations = 4
+"""
+
+
+def snapshot(folder: Path) -> dict:
+    """Every file under ``folder`` (and the folder's siblings) with bytes and mtime."""
+    out = {}
+    for p in sorted(folder.parent.rglob("*")):
+        if p.is_file():
+            out[str(p.relative_to(folder.parent))] = (p.read_bytes(), p.stat().st_mtime_ns)
+    return out
+
+
+@pytest.fixture(scope="module")
+def finished_folder(tmp_path_factory):
+    root = tmp_path_factory.mktemp("results")
+    problem = root / "small.toml"
+    problem.write_text(SMALL)
+    out = root / "out"
+    assert main(["optimize", str(problem), "--out", str(out), "--quiet"]) == 0
+    return problem, out
+
+
+@pytest.fixture
+def finished(tmp_path, finished_folder):
+    """A private copy of a finished results folder and its problem file."""
+    problem, out = finished_folder
+    shutil.copy(problem, tmp_path / "small.toml")
+    shutil.copytree(out, tmp_path / "runs" / "out")
+    return tmp_path / "small.toml", tmp_path / "runs" / "out"
+
+
+def refused(capsys, argv, folder: Path, *needles: str) -> str:
+    """Run ``main(argv)``; assert exit 2, one line naming needles, folder untouched, < 5 s."""
+    before = snapshot(folder)
+    t0 = time.perf_counter()
+    code = main(argv)
+    elapsed = time.perf_counter() - t0
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err, err
+    for needle in needles:
+        assert needle in err, (needle, err)
+    assert snapshot(folder) == before
+    assert elapsed < 5.0, elapsed
+    return err
+
+
+# ---------------------------------------------------------------------------- refusals
+
+
+def test_users_own_files_are_not_replaced_without_overwrite(tmp_path, capsys):
+    problem = tmp_path / "small.toml"
+    problem.write_text(SMALL)
+    out = tmp_path / "runs" / "mine"
+    out.mkdir(parents=True)
+    (out / "design.png").write_bytes(b"the user's own picture")
+    (out / "notes.txt").write_text("keep")
+    refused(capsys, ["optimize", str(problem), "--out", str(out), "--quiet"], out,
+            str(out), "--overwrite")
+    # with --overwrite the folder is replaced, and files buttress does not write are kept
+    assert main(["optimize", str(problem), "--out", str(out), "--quiet", "--overwrite"]) == 0
+    assert (out / "notes.txt").read_text() == "keep"
+    assert (out / "design.png").read_bytes() != b"the user's own picture"
+    assert (out / "summary.json").exists()
+
+
+def test_finished_results_are_kept_without_overwrite(finished, capsys):
+    problem, out = finished
+    refused(capsys, ["optimize", str(problem), "--out", str(out), "--quiet"], out,
+            str(out), "--overwrite")
+
+
+def test_unwritable_target_is_refused_before_the_run(tmp_path, capsys):
+    problem = tmp_path / "small.toml"
+    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 5000"))
+    parent = tmp_path / "locked"
+    parent.mkdir()
+    if os.geteuid() == 0:
+        # root writes through permission bits; the immutable flag stops root as well
+        if shutil.which("chattr") is None or subprocess.run(
+                ["chattr", "+i", str(parent)], capture_output=True).returncode != 0:
+            pytest.skip("cannot make a folder unwritable for root here (no chattr +i)")
+    else:
+        parent.chmod(0o555)
+    try:
+        t0 = time.perf_counter()
+        code = main(["optimize", str(problem), "--out", str(parent / "out"), "--quiet"])
+        err = capsys.readouterr().err
+        # refused at once (5000 iterations would take minutes), one line naming the folder
+        assert code == 2 and time.perf_counter() - t0 < 5.0
+        assert len(err.strip().splitlines()) == 1 and str(parent / "out") in err, err
+    finally:
+        if os.geteuid() == 0:
+            subprocess.run(["chattr", "-i", str(parent)], check=True)
+        else:
+            parent.chmod(0o755)
+    assert list(parent.iterdir()) == []
+
+
+def test_a_second_writer_is_refused_at_once(tmp_path, capsys):
+    out = tmp_path / "out"
+    problem = tmp_path / "small.toml"
+    problem.write_text(SMALL)
+    with folder_lock(out):
+        t0 = time.perf_counter()
+        code = main(["optimize", str(problem), "--out", str(out), "--quiet"])
+        err = capsys.readouterr().err
+        assert code == 2 and time.perf_counter() - t0 < 5.0
+        assert "another buttress run" in err and len(err.strip().splitlines()) == 1
+    assert not out.exists()
+    # the lock is released (and its file removed) when the holder ends
+    assert main(["optimize", str(problem), "--out", str(out), "--quiet"]) == 0
+    assert not (tmp_path / ".out.lock").exists()
+
+
+def test_two_concurrent_processes_one_is_refused(tmp_path):
+    problem = tmp_path / "small.toml"
+    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 60")
+                       .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
+    out = tmp_path / "out"
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    cmd = [sys.executable, "-m", "topopt.cli", "optimize", str(problem), "--out", str(out),
+           "--quiet"]
+    procs = [subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True) for _ in range(2)]
+    results = [p.communicate(timeout=300) for p in procs]
+    codes = sorted(p.returncode for p in procs)
+    assert codes == [0, 2], (codes, results)
+    loser = results[[p.returncode for p in procs].index(2)][1]
+    assert "another buttress run" in loser and "Traceback" not in loser
+    assert read_results(out).summary["iterations"] == 60
+
+
+# ---------------------------------------------------------------------------- one unit
+
+KILL_SCRIPT = """
+import os, sys, time
+from pathlib import Path
+from topopt.problem import load_problem
+from topopt.driver import optimize
+from topopt.results import folder_lock, write_results
+problem = load_problem(sys.argv[1])
+result = optimize(problem)
+with folder_lock(Path(sys.argv[2])):
+    print("writing", flush=True)
+    write_results(result, problem, sys.argv[2])
+print("done", flush=True)
+"""
+
+
+def folder_is_complete(out: Path, iterations: int) -> bool:
+    folder = read_results(out)
+    return folder.summary["iterations"] == iterations and folder.problem.optimize.max_iterations == iterations
+
+
+@pytest.mark.parametrize("rounds", [4, pytest.param(50, marks=pytest.mark.slow)])
+def test_kill_during_writing_leaves_the_old_or_the_new_folder(tmp_path, finished, rounds):
+    # kill -9 at a random moment of writing an --overwrite run, many times: the folder
+    # must always read back complete, either the old run (4 iterations) or the new (3)
+    problem, out = finished
+    new_problem = tmp_path / "new.toml"
+    new_problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 3"))
+    script = tmp_path / "kill_writer.py"
+    script.write_text(KILL_SCRIPT)
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    pristine = tmp_path / "pristine"
+    shutil.copytree(out, pristine)
+    # how long writing takes here (a copy of the folder, not killed)
+    spare = tmp_path / "spare" / "out"
+    shutil.copytree(out, spare)
+    proc = subprocess.Popen([sys.executable, str(script), str(new_problem), str(spare)],
+                            cwd=ROOT, env=env, stdout=subprocess.PIPE, text=True)
+    assert proc.stdout.readline().strip() == "writing"
+    t0 = time.perf_counter()
+    assert proc.stdout.readline().strip() == "done"
+    duration = time.perf_counter() - t0
+    proc.wait()
+    proc.stdout.close()
+    # kill moments spread over the whole write (and a little after), in random order
+    rng = random.Random(15)
+    moments = [1.2 * duration * (k + rng.random()) / rounds for k in range(rounds)]
+    rng.shuffle(moments)
+    outcomes = {"old": 0, "new": 0}
+    for moment in moments:
+        proc = subprocess.Popen([sys.executable, str(script), str(new_problem), str(out)],
+                                cwd=ROOT, env=env, stdout=subprocess.PIPE, text=True)
+        assert proc.stdout.readline().strip() == "writing"
+        time.sleep(moment)
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        proc.stdout.close()
+        with folder_lock(out):  # tidies what the killed writer left behind
+            pass
+        if folder_is_complete(out, 4):
+            outcomes["old"] += 1
+        else:
+            assert folder_is_complete(out, 3)
+            outcomes["new"] += 1
+            # back to the old run for the next round
+            shutil.rmtree(out)
+            shutil.copytree(pristine, out)
+        leftovers = [p.name for p in out.parent.iterdir() if p.name.startswith(".")]
+        assert leftovers == [], leftovers
+    print(f"kill -9 while writing, {rounds} rounds: {outcomes}")
+    assert outcomes["old"] + outcomes["new"] == rounds
+
+
+# ---------------------------------------------------------------------------- reading
+
+
+def damaged_copies(path: Path, tmp_path: Path) -> dict[str, Path]:
+    data = path.read_bytes()
+    out = {}
+    truncated = tmp_path / "truncated.npz"
+    truncated.write_bytes(data[: len(data) // 2])
+    out["truncated"] = truncated
+    # flip a byte inside the first member's data: the CRC no longer matches
+    with zipfile.ZipFile(path) as archive:
+        info = archive.infolist()[0]
+    offset = info.header_offset + 30 + len(info.filename.encode()) + len(info.extra) + 200
+    flipped = bytearray(data)
+    flipped[offset] ^= 0xFF
+    bad_crc = tmp_path / "bad-crc.npz"
+    bad_crc.write_bytes(bytes(flipped))
+    out["bad-crc"] = bad_crc
+    garbage = tmp_path / "garbage.npz"
+    garbage.write_bytes(b"PK\x03\x04" + bytes(100))
+    out["garbage"] = garbage
+    compressed = tmp_path / "compressed.npz"
+    with np.load(path) as arrays:
+        np.savez_compressed(compressed, **{k: arrays[k] for k in arrays.files})
+    raw = bytearray(compressed.read_bytes())
+    with zipfile.ZipFile(compressed) as archive:
+        info = archive.infolist()[0]
+    start = info.header_offset + 30 + len(info.filename.encode()) + len(info.extra)
+    raw[start + 10: start + 40] = bytes(30)  # damage the deflate stream (zlib error)
+    bad_zlib = tmp_path / "bad-zlib.npz"
+    bad_zlib.write_bytes(bytes(raw))
+    out["bad-zlib"] = bad_zlib
+    return out
+
+
+@pytest.mark.parametrize("damage", ["truncated", "bad-crc", "garbage", "bad-zlib"])
+def test_damaged_npz_is_one_line_for_inspect_and_export(tmp_path, finished, capsys, damage):
+    problem, out = finished
+    bad = damaged_copies(out / "result.npz", tmp_path)[damage]
+    with pytest.raises(ResultsError) as info:
+        read_arrays(bad)
+    assert str(bad) in str(info.value) and "\n" not in str(info.value)
+    shutil.copy(bad, out / "result.npz")
+    report = tmp_path / "report"
+    refused(capsys, ["inspect", str(out), "--out", str(report)], out, "result.npz")
+    refused(capsys, ["export", str(out), "--format", "png"], out, "result.npz")
+    refused(capsys, ["inspect", str(bad), "--element-size", "1", "--out", str(report)], out,
+            str(bad))
+
+
+def test_npy_header_is_checked_before_reading(tmp_path, finished, capsys):
+    # a header claiming (1e5)^3 doubles (7 PiB) with no data behind it
+    path = tmp_path / "huge.npy"
+    with open(path, "wb") as handle:
+        np.lib.format.write_array_header_1_0(
+            handle, {"descr": "<f8", "fortran_order": False, "shape": (100000,) * 3})
+    _, out = finished
+    err = refused(capsys, ["inspect", str(path), "--element-size", "1", "--out",
+                           str(tmp_path / "r")], out, str(path), "memory cap")
+    assert "GiB" in err
+    # object arrays are refused from the header alone (nothing is unpickled)
+    obj = tmp_path / "objects.npy"
+    np.save(obj, np.array([{"a": 1}, None], dtype=object), allow_pickle=True)
+    refused(capsys, ["inspect", str(obj), "--element-size", "1", "--out", str(tmp_path / "r")],
+            out, str(obj), "objects")
+
+
+def test_damaged_summary_is_reported_with_the_file(finished):
+    _, out = finished
+    (out / "summary.json").write_text("{not json")
+    with pytest.raises(ResultsError, match="summary.json"):
+        read_results(out)
+
+
+# ---------------------------------------------------------------------------- checkpoints
+
+
+def checkpoint_state(shape=(20, 10), iteration=3) -> dict:
+    history = [{"iteration": i + 1, "compliance": 1.0 / (i + 1), "elapsed_s": 0.1 * i}
+               for i in range(iteration)]
+    return {"design": np.full(shape, 0.4), "iteration": iteration, "history": history}
+
+
+def test_checkpoint_round_trip(tmp_path):
+    path = tmp_path / "checkpoint.npz"
+    save_checkpoint(path, checkpoint_state(), "abc")
+    state = load_checkpoint(path, "abc", shape=(20, 10), max_iterations=10)
+    assert state["iteration"] == 3 and state["design"].shape == (20, 10)
+    assert [row["iteration"] for row in state["history"]] == [1, 2, 3]
+
+
+@pytest.mark.parametrize("entry, edit", [
+    ("iteration", lambda a: a.pop("iteration")),
+    ("design", lambda a: a.__setitem__("design", np.zeros((7, 3)))),
+    ("design", lambda a: a.__setitem__("design", np.full((20, 10), np.nan))),
+    ("iteration", lambda a: a.__setitem__("iteration", np.array(-4))),
+    ("iteration", lambda a: a.__setitem__("iteration", np.array(2.5))),
+    ("history", lambda a: a.__setitem__("history", np.zeros((3, 9)))),
+    ("continuation_beta", lambda a: a.__setitem__("continuation_beta", np.array(np.inf))),
+])
+def test_hand_made_checkpoint_is_one_line_naming_the_entry(tmp_path, finished, capsys,
+                                                          entry, edit):
+    problem, out = finished
+    from topopt.commands.optimize import problem_digest
+    from topopt.problem import load_problem
+
+    digest = problem_digest(load_problem(problem))
+    path = out / "checkpoint.npz"
+    save_checkpoint(path, checkpoint_state(), digest)
+    with np.load(path) as data:
+        arrays = {k: data[k] for k in data.files}
+    edit(arrays)
+    np.savez(path, **arrays)
+    err = refused(capsys, ["optimize", str(problem), "--out", str(out), "--resume", "--quiet"],
+                  out, str(path), entry)
+    assert "--overwrite" in err
+
+
+def test_compare_and_sweep_refuse_a_folder_being_written(tmp_path, capsys):
+    problem = tmp_path / "small.toml"
+    problem.write_text(SMALL)
+    study = tmp_path / "study.toml"
+    study.write_text('problem = "small.toml"\n[vary]\n"optimize.volume_fraction" = [0.3, 0.4]\n')
+    for argv, out in ((["compare", str(problem), "--directions", "+y"], tmp_path / "cmp"),
+                      (["sweep", str(study), "--workers", "1"], tmp_path / "sweep")):
+        with folder_lock(out):
+            t0 = time.perf_counter()
+            code = main([*argv, "--out", str(out), "--quiet"])
+            err = capsys.readouterr().err
+            assert code == 2 and time.perf_counter() - t0 < 5.0, err
+            assert "another buttress run" in err and len(err.strip().splitlines()) == 1
+        assert not out.exists()
