@@ -6,7 +6,9 @@ and has ``name``, ``iterations`` (of the last solve; 0 for direct solvers) and
 the free dofs and right-hand sides ``F`` of shape (n_free, n_cases). ``element_matrix``
 and ``moduli`` (the relative element moduli K was assembled from) are optional hints
 that the multigrid solver uses to build its coarse grids element by element; direct
-solvers ignore them.
+solvers ignore them. A solver with ``matrix_free = True`` (multigrid given the element
+matrix) applies the finest operator element by element and accepts ``K=None`` when the
+moduli are given, so the caller need not assemble K (ComplianceModel does not).
 """
 
 from __future__ import annotations
