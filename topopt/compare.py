@@ -185,7 +185,17 @@ def compare(
     taken = [out / "comparison.csv"] + [out / folder_name(d) / "summary.json" for d in runs]
     if not overwrite and any(p.exists() for p in taken):
         raise ValueError(f"{out}: holds results already; use overwrite or another folder")
-    variants = {d: with_settings(problem, {"build.direction": d if isinstance(d, str) else list(d)})
+    shared = {}
+    opt = problem.source.get("optimize", {})
+    if "projection" not in opt and "min_member_size" not in opt:
+        from topopt.problem import DEFAULT_BETA_EVERY, DEFAULT_BETA_MAX
+
+        # the free design gets the projection continuation the self-supporting runs get
+        # by default, so that every design of the comparison ends crisp and converged
+        shared["optimize.projection"] = {"every": DEFAULT_BETA_EVERY,
+                                         "beta_max": DEFAULT_BETA_MAX}
+    variants = {d: with_settings(problem, {**shared,
+                                           "build.direction": d if isinstance(d, str) else list(d)})
                 for d in runs}
     out.mkdir(parents=True, exist_ok=True)
 
@@ -196,7 +206,7 @@ def compare(
         summaries[direction] = summary
         if progress:
             print(
-                f"compare: {direction:>4} done: compliance {summary['compliance']:.6g}, "
+                f"compare: {_label(direction):>4} done: compliance {summary['compliance']:.6g}, "
                 f"{summary['iterations']} iterations, {summary['elapsed_s']:.1f} s "
                 f"({len(summaries)}/{len(runs)}, {time.perf_counter() - t0:.0f} s so far)",
                 file=sys.stderr,
