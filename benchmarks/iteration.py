@@ -147,7 +147,9 @@ def run_iteration_job(shape, kind, solver, iterations=2):
         physical = chain.forward(x)
         clock.lap("filter")
         moduli = simp_modulus(physical.ravel(), penalty=3.0, void_stiffness=1e-9)
-        K = model.assembler.assemble(moduli)
+        # As ComplianceModel.displacements: a matrix-free solver is given no matrix.
+        matrix_free = getattr(model.solver, "matrix_free", False)
+        K = None if matrix_free else model.assembler.assemble(moduli)
         clock.lap("assembly")
         F = model.forces[model.free]
         Uf = model.solver.solve(K, F, moduli=moduli).reshape(model.free.size, -1)
@@ -231,6 +233,63 @@ def run_baseline_job(shape, kind, baseline):
     out["compliance"] = float(f @ u)
     out["peak_rss_gb"] = peak_rss_gb()
     return out
+
+
+def run_product_job(shape, kind, repeats=15):
+    """Time one CSR product y = K x of the assembled fine-grid matrix (the unit of cost).
+
+    The matrix is the one the iteration job assembles first (same problem and field),
+    held as CSR with 32-bit indices and 64-bit values, multiplied by a compiled loop over
+    the rows on all of numba's threads. The median of ``repeats`` products after one
+    warm-up is reported (and the fastest, to show the noise). The kernel lives here, not
+    in the solver, so that changes to the solver never change the unit.
+    """
+    from topopt.objective import ComplianceModel, simp_modulus
+
+    problem = cantilever_problem(shape, "scipy")
+    model = ComplianceModel(problem)
+    physical = model_filter(problem, density_field(shape, kind))
+    moduli = simp_modulus(physical.ravel(), penalty=3.0, void_stiffness=1e-9)
+    K = model.assembler.assemble(moduli)
+    # K is symmetric: its CSC arrays are the CSR arrays of the same matrix.
+    indptr, indices, data = K.indptr, K.indices, K.data
+    x = np.random.default_rng(7).random(K.shape[0])
+    y = np.empty_like(x)
+    _bench_csr_matvec(indptr, indices, data, x, y)
+    times, cpu = [], []
+    for _ in range(repeats):
+        t, c = time.perf_counter(), time.process_time()
+        _bench_csr_matvec(indptr, indices, data, x, y)
+        times.append(time.perf_counter() - t)
+        cpu.append(time.process_time() - c)
+    check = float(np.abs(y - K @ x).max() / np.abs(y).max())
+    import numba
+
+    return {"product_s": float(np.median(times)), "product_cpu_s": float(np.median(cpu)),
+            "product_min_s": float(min(times)),
+            "product_max_s": float(max(times)), "nnz": int(K.nnz),
+            "threads": int(numba.get_num_threads()), "check": check,
+            "peak_rss_gb": peak_rss_gb()}
+
+
+def _bench_csr_matvec(indptr, indices, data, x, y):
+    global _KERNEL
+    if _KERNEL is None:
+        import numba
+
+        @numba.njit(parallel=True, cache=False)
+        def kernel(indptr, indices, data, x, y):  # pragma: no cover - compiled
+            for i in numba.prange(indptr.size - 1):
+                acc = 0.0
+                for t in range(indptr[i], indptr[i + 1]):
+                    acc += data[t] * x[indices[t]]
+                y[i] = acc
+
+        _KERNEL = kernel
+    _KERNEL(indptr, indices, data, x, y)
+
+
+_KERNEL = None
 
 
 def model_filter(problem, x):
@@ -319,8 +378,13 @@ def sweep(args) -> dict:
         for kind in args.fields:
             entry = {"shape": shape, "n_elements": int(np.prod(shape)), "field": kind,
                      "load_before": os.getloadavg()}
+            # The unit of cost: one CSR product of the fine matrix, timed in its own
+            # process just before and just after our iteration job (same load).
+            unit = {"kind": "product", "shape": shape, "field": kind}
+            entry["product_before"] = spawn(unit, args.timeout, args.threads)
             job = {"kind": "iteration", "shape": shape, "field": kind, "solver": args.solver}
             entry["ours"] = spawn(job, args.timeout, args.threads)
+            entry["product_after"] = spawn(unit, args.timeout, args.threads)
             if args.direct_solver:
                 job = {"kind": "iteration", "shape": shape, "field": kind,
                        "solver": args.direct_solver}
@@ -381,12 +445,24 @@ def growth_exponents(result) -> dict:
     return out
 
 
+def product_unit(entry, key: str = "product_s") -> float | None:
+    """Seconds of one fine-grid CSR product: mean of the timings before and after
+    (``key="product_cpu_s"``: CPU seconds of all threads)."""
+    times = [entry.get(k, {}).get(key) for k in ("product_before", "product_after")]
+    times = [t for t in times if t]
+    return float(np.mean(times)) if times else None
+
+
 def _one_line(entry) -> str:
     ours = entry["ours"]
     if "iterations" in ours:
         it = ours["iterations"][-1]
         main = (f"{it['total']:.2f} s/it (solve {it['solve']:.2f} s, {it['iterations']} its), "
                 f"{ours['peak_rss_gb']:.2f} GB")
+        unit = product_unit(entry)
+        if unit:
+            main += (f", product {unit * 1e3:.1f} ms: {it['total'] / unit:.0f} products/it "
+                     f"(solve {it['solve'] / unit:.0f})")
     else:
         main = ours.get("skipped", "?")
     base = ", ".join(f"{k}: {v.get('time_s', v.get('skipped'))}" for k, v in
@@ -484,6 +560,7 @@ def markdown(results: list[dict]) -> str:
                 f"{_fmt(o['peak_rss_gb'])} | {direct_s} | {chol} | {amg} | {sps} | "
                 f"{ratio_amg} | {ratio_sps} | {load} |")
         lines.append("")
+        lines.extend(_product_table(res))
         for r in res["runs"]:
             if r.get("note"):
                 lines.append(f"Row {r['n_elements']:,} ({r['field']}): {r['note']}.")
@@ -513,6 +590,46 @@ def markdown(results: list[dict]) -> str:
                  "times are inflated; CPU s/it (all threads of the job) is then the better "
                  "guide to what a quiet machine would show.")
     return "\n".join(lines) + "\n"
+
+
+def _product_table(res) -> list[str]:
+    """Each stage of `ours` as a multiple of one fine-grid CSR product of the same run."""
+    rows = [r for r in res["runs"] if product_unit(r) and "iterations" in r["ours"]]
+    if not rows:
+        return []
+    lines = ["The same iterations in units of one CSR product y = K x of the assembled "
+             "fine-grid matrix (64-bit values, 32-bit indices, compiled row loop on the "
+             "job's threads), timed in its own process just before and just after the "
+             "iteration job; the unit is the mean of the two medians of 15 products, and "
+             "the spread is the fastest and slowest single product seen. `CPU products/it` "
+             "divides the iteration's CPU time (all threads) by the product's median CPU "
+             "time: on a shared machine it is less disturbed by waiting for a core.", "",
+             "| elements | field | nnz | product ms (before / after; spread) | filter | "
+             "assembly | solve | sensitivities | update | total products/it [first] | "
+             "CPU products/it | CG its | solve products per CG it | "
+             "peak GB (ours / product job) |",
+             "|" + "---|" * 14]
+    for r in rows:
+        unit = product_unit(r)
+        it, first = r["ours"]["iterations"][-1], r["ours"]["iterations"][0]
+        pb, pa = r.get("product_before", {}), r.get("product_after", {})
+        spread = [p[k] for p in (pb, pa) for k in ("product_min_s", "product_max_s") if k in p]
+        timing = " / ".join(f"{p['product_s'] * 1e3:.1f}" if "product_s" in p else "—"
+                            for p in (pb, pa))
+        timing += f"; {min(spread) * 1e3:.1f}-{max(spread) * 1e3:.1f}" if spread else ""
+        stages = " | ".join(f"{it[k] / unit:.1f}" for k in Clock.STAGES)
+        per_cg = f"{it['solve'] / unit / it['iterations']:.1f}" if it["iterations"] else "—"
+        nnz = pb.get("nnz") or pa.get("nnz") or 0
+        peak_p = max(p.get("peak_rss_gb", 0.0) for p in (pb, pa))
+        cpu_unit = product_unit(r, "product_cpu_s")
+        cpu_ratio = (f"{it['total_cpu'] / cpu_unit:.0f}"
+                     if cpu_unit and it.get("total_cpu") else "—")
+        lines.append(f"| {r['n_elements']:,} | {r['field']} | {nnz:,} | {timing} | {stages} | "
+                     f"{it['total'] / unit:.0f} [{first['total'] / unit:.0f}] | {cpu_ratio} | "
+                     f"{it['iterations']} | {per_cg} | {r['ours']['peak_rss_gb']:.2f} / "
+                     f"{peak_p:.2f} |")
+    lines.append("")
+    return lines
 
 
 # ---------------------------------------------------------------------------------- CLI
@@ -552,6 +669,8 @@ def main(argv=None) -> int:
         shape = tuple(job["shape"])
         if job["kind"] == "iteration":
             out = run_iteration_job(shape, job["field"], job["solver"])
+        elif job["kind"] == "product":
+            out = run_product_job(shape, job["field"])
         else:
             out = run_baseline_job(shape, job["field"], job["baseline"])
         print(json.dumps(out))

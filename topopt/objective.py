@@ -77,7 +77,8 @@ class ComplianceModel:
     def displacements(self, physical: np.ndarray) -> np.ndarray:
         """Global displacements for every load case, shape (n_dofs, n_cases)."""
         moduli = simp_modulus(physical.ravel(), penalty=self.penalty, void_stiffness=self.void_stiffness)
-        K = self.assembler.assemble(moduli)
+        # A matrix-free solver (multigrid with the element matrix) never needs K.
+        K = None if getattr(self.solver, "matrix_free", False) else self.assembler.assemble(moduli)
         U = np.zeros_like(self.forces)
         U[self.free] = self.solver.solve(K, self.forces[self.free], moduli=moduli).reshape(
             self.free.size, -1)

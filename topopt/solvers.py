@@ -6,7 +6,9 @@ and has ``name``, ``iterations`` (of the last solve; 0 for direct solvers) and
 the free dofs and right-hand sides ``F`` of shape (n_free, n_cases). ``element_matrix``
 and ``moduli`` (the relative element moduli K was assembled from) are optional hints
 that the multigrid solver uses to build its coarse grids element by element; direct
-solvers ignore them.
+solvers ignore them. A solver with ``matrix_free = True`` (multigrid given the element
+matrix) applies the finest operator element by element and accepts ``K=None`` when the
+moduli are given, so the caller need not assemble K (ComplianceModel does not).
 """
 
 from __future__ import annotations
@@ -122,7 +124,12 @@ class MultigridSolver:
 
         if grid is None or free_dofs is None:
             raise ValueError("solver 'multigrid' needs the grid and the free dofs")
-        self.hierarchy = MultigridHierarchy(grid, free_dofs, coarse_dofs=coarse_dofs)
+        # With the element matrix the finest grid is applied element by element and
+        # never assembled (matrix_free): the caller may pass K=None with the moduli.
+        self.hierarchy = MultigridHierarchy(grid, free_dofs, coarse_dofs=coarse_dofs,
+                                            element_matrix=element_matrix)
+        self.matrix_free = element_matrix is not None
+        self._grid, self._free, self._coarse_dofs = grid, free_dofs, coarse_dofs
         self.element_matrix = element_matrix
         self.tolerance = DEFAULT_TOLERANCE if tolerance is None else float(tolerance)
         self.max_iterations = int(max_iterations)
@@ -141,11 +148,20 @@ class MultigridSolver:
             return self._solve(K, F, moduli)
 
     def _solve(self, K, F, moduli):
-        from topopt.multigrid import multigrid_cg
+        from topopt.multigrid import MultigridHierarchy, multigrid_cg
 
         F = np.asarray(F, dtype=float)
         F2 = F.reshape(F.shape[0], -1)
         use_elements = moduli is not None and self.element_matrix is not None
+        if self.matrix_free and not use_elements:
+            # No moduli given: fall back to a hierarchy over the assembled matrix.
+            if K is None:
+                raise ValueError("solver 'multigrid' needs the matrix or the moduli")
+            self.hierarchy = MultigridHierarchy(self._grid, self._free,
+                                                coarse_dofs=self._coarse_dofs)
+            self.matrix_free = False
+        elif K is None and not self.matrix_free:
+            raise ValueError("solver 'multigrid' needs the matrix or the moduli")
         self.hierarchy.update(K, element_matrix=self.element_matrix if use_elements else None,
                               moduli=moduli if use_elements else None)
         warm = self._previous is not None and self._previous.shape == F2.shape

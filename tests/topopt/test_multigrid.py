@@ -193,3 +193,100 @@ def test_bracket_3d_optimisation_same_with_multigrid_and_direct():
     assert mg.solver == "multigrid"
     assert abs(mg.compliance - direct.compliance) <= 5e-3 * direct.compliance
     assert mg.iterations == direct.iterations or abs(mg.iterations - direct.iterations) <= 5
+
+
+# --------------------------------------------------------------- matrix-free finest grid
+
+
+@pytest.mark.parametrize("shape", [(9, 6), (7, 5, 3), (8, 1, 5), (12, 7, 6)])
+def test_element_operator_equals_assembled_product(shape):
+    # Identity: sum_e s_e K0 u_e applied element by element equals the assembled
+    # stiffness matrix times u on the free dofs (definition of assembly; common
+    # practice), to rounding (1e-12 relative); fixed dofs get zero.
+    from topopt.assembly import ElementOperator
+
+    grid, Ke, free, moduli, K, f = cantilever(shape, seed=3)
+    op = ElementOperator(grid, Ke, free)
+    op.set_moduli(moduli)
+    x = np.zeros(grid.n_dofs)
+    x[free] = np.random.default_rng(5).standard_normal(free.size)
+    y = op.matvec(x)
+    ref = K @ x[free]
+    assert np.abs(y[free] - ref).max() <= 1e-12 * np.abs(ref).max()
+    assert not np.any(y[op.fixed])
+    assert np.abs(op.diagonal()[free] - K.diagonal()).max() <= 1e-12 * K.diagonal().max()
+    # Single-precision products (used only by the smoother) are close but not exact:
+    # float32 rounding, about 1e-7 relative (IEEE 754 single precision).
+    y32 = op.matvec(x, single=True)
+    err32 = np.abs(y32[free] - ref).max() / np.abs(ref).max()
+    assert 1e-12 < err32 < 1e-5
+
+
+@pytest.mark.parametrize(("shape", "void"), CASES)
+def test_matrix_free_compliance_equals_direct_to_1e8(shape, void):
+    # Reference: CHOLMOD (SciPy's SuperLU without it) on the assembled matrix. The
+    # matrix-free multigrid-CG (single-precision smoother, double-precision CG) is
+    # given no matrix at all; its compliance must agree to 1e-8 relative (issue 13).
+    grid, Ke, free, moduli, K, f = cantilever(shape, void_box=void)
+    u_ref = make_solver(direct_name, grid=grid, free_dofs=free).solve(K, f)
+    solver = MultigridSolver(grid=grid, free_dofs=free, element_matrix=Ke, coarse_dofs=300)
+    assert solver.matrix_free and solver.hierarchy.full_numbering
+    u = solver.solve(None, f, moduli=moduli)
+    c_ref, c = float(f[:, 0] @ u_ref[:, 0]), float(f[:, 0] @ u[:, 0])
+    assert abs(c - c_ref) <= 1e-8 * c_ref
+    assert 0 < solver.iterations <= 40
+
+
+def test_matrix_free_solver_without_moduli_falls_back_to_the_matrix():
+    grid, Ke, free, moduli, K, f = cantilever((21, 10, 9))
+    ref = make_solver(direct_name, grid=grid, free_dofs=free).solve(K, f)
+    solver = MultigridSolver(grid=grid, free_dofs=free, element_matrix=Ke, coarse_dofs=300)
+    u = solver.solve(K, f)                          # no moduli: assembled hierarchy
+    assert not solver.matrix_free
+    assert abs(f[:, 0] @ u[:, 0] - f[:, 0] @ ref[:, 0]) <= 1e-8 * f[:, 0] @ ref[:, 0]
+    with pytest.raises(ValueError):
+        solver.solve(None, f)
+
+
+def grey_cantilever(shape=(34, 17, 17)):
+    """Cantilever with a grey field: uniform random densities smoothed over 3 elements
+    (like the density-filtered random field of benchmarks/iteration.py)."""
+    from scipy import ndimage
+
+    grid, Ke, free, _, _, f = cantilever(shape)
+    rho = ndimage.uniform_filter(np.random.default_rng(2024).random(shape), size=3)
+    moduli = (1e-9 + (1 - 1e-9) * rho**3).ravel()
+    K = Assembler(grid, Ke, free).assemble(moduli)
+    return grid, Ke, free, moduli, K, f
+
+
+@pytest.mark.parametrize("matrix_free", [False, True])
+def test_grey_field_compliance_equals_direct(matrix_free):
+    # Regression: with 12 power steps and a 10 % margin the Chebyshev bound fell below
+    # the largest eigenvalue of D^-1 A on this field (2.94 x 1.1 against 3.47), the
+    # V-cycle was indefinite and CG stopped after 4 iterations with the compliance off
+    # by 1e-4. Reference: CHOLMOD (SuperLU without it); 1e-8 relative (issue 13).
+    grid, Ke, free, moduli, K, f = grey_cantilever()
+    c_ref = float(f[:, 0] @ make_solver(direct_name, grid=grid, free_dofs=free).solve(K, f)[:, 0])
+    h = (MultigridHierarchy(grid, free, element_matrix=Ke) if matrix_free
+         else MultigridHierarchy(grid, free))
+    h.update(K, element_matrix=Ke, moduli=moduli)
+    u, its, ok = multigrid_cg(h, f[:, 0])
+    assert ok
+    assert abs(f[:, 0] @ u - c_ref) <= 1e-8 * c_ref
+
+
+def test_indefinite_smoother_is_caught():
+    # With the smoother's spectral bound deliberately halved the V-cycle is indefinite;
+    # CG must notice (non-positive r^T M^-1 r or p^T A p), switch to Gershgorin bounds
+    # and still reach the direct solver's compliance to 1e-8.
+    grid, Ke, free, moduli, K, f = grey_cantilever()
+    c_ref = float(f[:, 0] @ make_solver(direct_name, grid=grid, free_dofs=free).solve(K, f)[:, 0])
+    h = MultigridHierarchy(grid, free, element_matrix=Ke)
+    h.update(None, moduli=moduli)
+    for lev in h.levels:
+        lev.lmax *= 0.5
+    u, its, ok = multigrid_cg(h, f[:, 0])
+    assert ok
+    assert abs(f[:, 0] @ u - c_ref) <= 1e-8 * c_ref
+    assert all(lev.lmax >= lev.gershgorin_bound() for lev in h.levels)
