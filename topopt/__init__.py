@@ -3,8 +3,10 @@
 Scripts and notebooks use two calls:
 
 >>> import topopt
->>> # problem = topopt.load_problem("examples/wall-bracket-2d.toml")
->>> # result = topopt.optimize(problem)
+>>> problem = topopt.load_problem("examples/mbb-beam.toml")
+>>> result = topopt.optimize(problem)
+>>> result.converged, round(result.volume_fraction, 3)
+(True, 0.5)
 """
 
 __version__ = "0.1.0"

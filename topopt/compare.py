@@ -146,8 +146,13 @@ def compare(
 
     Examples
     --------
-    >>> # rows = compare(load_problem("examples/mbb-beam.toml"), out_dir="cmp")
-    >>> # [(r["direction"], r["compliance_increase_percent"]) for r in rows]
+    >>> from topopt.problem import load_problem, with_settings
+    >>> beam = with_settings(load_problem("examples/mbb-beam.toml"), {"optimize.max_iterations": 5})
+    >>> rows = compare(beam, directions="+y", out_dir="cmp", workers=1)
+    >>> [(r["direction"], r["results"]) for r in rows]
+    [('none', 'none'), ('+y', 'plus-y')]
+    >>> rows[1]["compliance"] > rows[0]["compliance"]
+    True
     """
     from topopt.export import write_csv
     from topopt.problem import with_settings

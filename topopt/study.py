@@ -32,8 +32,8 @@ already done. Cases that failed are tried again on the next run.
 key, ``status`` (``ok`` / ``failed``), ``error``, ``compliance``, ``volume_fraction``,
 ``unsupported_elements`` (from the case summary, where the printability filter ran),
 ``iterations``, ``converged``, ``elapsed_s``, and the print-preparation figures
-``support_volume``, ``build_time_h`` and ``assessed_direction`` (blank when
-:mod:`topopt.build` is not available). ``OUT/study.png`` plots compliance against each
+``support_volume``, ``build_time_h`` and ``assessed_direction`` (blank when nothing
+solid was designed). ``OUT/study.png`` plots compliance against each
 varied setting and compliance against support volume with the non-dominated cases
 ringed.
 """
@@ -320,7 +320,11 @@ def run_case(problem_table: Mapping, *, source: str, single_thread: bool = True)
 
     Examples
     --------
-    >>> # run_case(case.problem.source, source=case.problem.path)["result"].compliance
+    >>> problem = with_settings(load_problem("examples/mbb-beam.toml"), {"optimize.max_iterations": 2})
+    >>> run_case(problem.source, source=problem.path)["result"].iterations
+    2
+    >>> run_case({"domain": {}}, source="broken.toml")["error"].split(":")[:3]
+    ['ProblemError', ' broken.toml', ' domain.shape']
     """
     import contextlib
 
@@ -434,8 +438,12 @@ def run(
 
     Examples
     --------
-    >>> # rows = run("examples/overhang-study.toml", out_dir="study-out", workers=2)
-    >>> # [(r["case"], r["compliance"]) for r in rows if r["status"] == "ok"]
+    >>> rows = run({"problem": "examples/mbb-beam.toml",
+    ...             "set": {"optimize.max_iterations": 2},
+    ...             "vary": {"optimize.volume_fraction": [0.4, 0.5]}},
+    ...            out_dir="study-out", workers=1)
+    >>> [(r["optimize.volume_fraction"], r["status"], r["iterations"]) for r in rows]
+    [(0.4, 'ok', 2), (0.5, 'ok', 2)]
     """
     bad_workers = isinstance(workers, bool) or not isinstance(workers, int) or workers < 1
     if workers is not None and bad_workers:
@@ -563,16 +571,16 @@ def case_row(st: Study, case: Case, folder: Path) -> dict:
 def print_figures(problem: Problem, folder: Path) -> dict:
     """Support volume and build time of a finished case, where the analysis exists.
 
-    Uses :mod:`topopt.build` (print-preparation analysis) when it can be imported;
-    otherwise the figures stay blank. A case built without a build direction is assessed
-    in the direction the analysis ranks best; ``assessed_direction`` says which.
+    Uses :mod:`topopt.build` (print-preparation analysis); the figures stay blank when
+    the results folder has no readable density or nothing would be printed. A case built
+    without a build direction is assessed in the direction the analysis ranks best;
+    ``assessed_direction`` says which.
     """
-    blank = {"support_volume": None, "build_time_h": None, "assessed_direction": None}
-    try:
-        from topopt.build import analyze_design
-    except ImportError:
-        return blank
     import numpy as np
+
+    from topopt.build import analyze_design
+
+    blank = {"support_volume": None, "build_time_h": None, "assessed_direction": None}
 
     try:
         with np.load(folder / "result.npz", allow_pickle=False) as data:
@@ -719,8 +727,7 @@ def _plot_tradeoff(ax, ok, keys, directions, colours) -> None:
     ax.set_ylabel("compliance")
     ax.set_title("stiffness against supports", fontsize=9)
     if not pts:
-        ax.text(0.5, 0.5, "support volume not available\n(print-preparation analysis\n"
-                "not installed or no solid design)", ha="center", va="center",
+        ax.text(0.5, 0.5, "support volume not available\n(no solid design)", ha="center", va="center",
                 transform=ax.transAxes, fontsize=9)
         return
     xs = [r["support_volume"] for r in pts]
