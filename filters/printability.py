@@ -1,114 +1,273 @@
-"""Layer-wise printability filter for a build direction and an overhang angle.
+"""Layer-wise printability filter for any build direction and overhang angle.
 
-The filter follows the layer-wise additive-manufacturing filter of Langelaar
+The filter generalises the layer-wise additive-manufacturing filter of Langelaar
 (2D: Structural and Multidisciplinary Optimization 55:871-883, 2017; 3D: Additive
-Manufacturing 12:60-70, 2016), written here from the published method. The build axis
-is moved to the front of the array (and flipped for a minus direction), so layer ``l``
-is ``x[l]`` and layer 0 rests on the build plate. The printed density ``xi`` is swept
-layer by layer::
+Manufacturing 12:60-70, 2016), written here from the published method, to a build
+direction given as any vector and an overhang angle between 20 and 70 degrees. The
+support region of an element is the part of the cone below it (the cone of half-angle
+90 degrees minus the overhang angle around the downward build direction), reaching a
+few elements deep, as in the cone-shaped support regions of Gaynor & Guest
+(Structural and Multidisciplinary Optimization 54:1157-1172, 2016); the discretisation
+of that cone on the voxel grid, described below, is ours.
 
-    xi[0]    = x[0]                                   (the plate supports layer 0)
-    xi[l]    = smin(x[l], Xi[l])                      for l >= 1
-    Xi[l]    = smax(values of the support region of the element in the layers below)
+Rule (exact, 0/1 designs)
+-------------------------
+Heights are measured along the unit build direction ``d`` (see :mod:`filters.direction`);
+elements are visited from the lowest height up. An element *prints* when it is solid
+and either rests on the build plate or is held by a *strut*: an offset ``o`` of the
+support stencil such that the element ``q = p + o`` below it prints and so does every
+element on the straight line from ``q`` up to ``p`` (sampled once per unit of depth, each
+sample taken to the nearby element on the inner side of the line, see ``_strut``). The stencil holds the offsets
+``o`` whose depth ``-o . d`` lies in (0, D] and whose angle from straight down is at
+most 90 degrees minus the overhang angle. A straight strut inside the cone is what
+a down-facing surface at least as steep as the overhang angle offers below each of its
+elements; requiring the whole strut (not only its foot) to print keeps a part from
+jumping sideways over a powder gap. Positions outside the domain are void, except
+under the plate, which holds everything. The depth ``D`` (1 to 12 elements) is chosen
+per direction and angle: the smallest for which the shallowest overhang the stencil
+accepts in some direction around the build axis is within 1 degree of the angle asked
+and the steepest it demands is within 10 degrees (see :func:`support_stencil`). For
+the axis directions at 45 degrees the stencil is the element below and its face
+neighbours in that layer (3 in 2D, 5 in 3D): the rule of the papers.
+
+Smooth filter
+-------------
+The printed density ``xi`` follows the same sweep with the smooth minimum and maximum of
+the papers::
+
+    xi_p = x_p                                       (on the plate)
+    xi_p = smin(x_p, smax over o of v_o)             otherwise
+    v_o  = smin fold of xi over q and the strut of o
     smin(a, b) = 0.5 * (a + b - sqrt((a - b)**2 + epsilon) + sqrt(epsilon))
     smax(c_1..c_Ns) = (sum_k c_k**P) ** (1 / Q),  Q = P + log(Ns) / log(xi0)
 
 ``Q`` makes ``smax`` exact when all ``Ns`` inputs equal ``xi0``. The forms of ``smin`` and
 ``smax``, the ``Q`` correction and the defaults ``epsilon = 1e-4``, ``P = 40``,
 ``xi0 = 0.5`` are recalled from the papers, not read from them while writing this code.
-Also from memory: that layer 0 is passed through unchanged (``xi[0] = x[0]``) rather
-than through ``smin(x, 1)``; both say "the plate supports the first layer", ours has no
-smoothing error there. Elements of the support region that lie outside the domain count
-as void (zero); they add nothing to the P-sum, so ``Ns`` is the same for every element.
+The adjoint is a reverse sweep in falling height (exact; checked by finite
+differences in the tests).
 
-Smoothing error (measured and computed for the defaults, 0/1 inputs): printed elements
-come out within 0.005 of 1 (smax of equal ones is ``Ns**(1/Q) > 1``, so values slightly
-above 1 occur); removed elements come out at most about 0.06, the fixed point of
-``a -> smin(1, Ns**(1/Q) a**(P/Q))`` reached along tall unsupported columns (0.059 for
-Ns = 3, 0.032 for Ns = 5, 0.017 for Ns = 13). At the 0.5 level the output equals the
-exact printable part. Grey inputs are another matter: an element just above 0.5 can sit
-on supports just below 0.5 (smin exceeds the smaller input by up to sqrt(epsilon)/2).
-
-Support region and the overhang angle
--------------------------------------
-Angles are measured from the build plate along a grid axis; a down-facing surface at
-least as steep as the enforced angle prints without support. On square / cubic elements
-the grid represents three angles, by two kinds of support region:
-
-* **reach r, one layer** (``tan(angle) = 1 / r``): the support of an element is every
-  element of the layer directly below whose lateral offset has Manhattan length <= r.
-  ``r = 1`` is the 45 degree rule of the papers: 3 elements in 2D, the element below and
-  its 4 face neighbours (5 elements) in 3D. ``r = 2`` enforces atan(1/2) = 26.57 degrees
-  (5 elements in 2D, 13 in 3D).
-* **rise k, reach 1** (``tan(angle) = k``): an element is supported by the element
-  directly below it, or by a face neighbour of that element provided the neighbour
-  stands on a column of ``k`` elements (the neighbour and the ``k - 1`` elements under
-  it; layers under the plate count as solid). In the smooth filter the column value is
-  a ``smin`` fold of those ``k`` printed densities. ``k = 2`` enforces atan(2) = 63.43
-  degrees. A plain region over several layers would let a part jump over a powder gap,
-  which is why the column must be complete.
-
-Rule for the requested ``overhang_angle``: it must lie in [26.5, 63.5] degrees, and the
-enforced angle is the smallest representable angle (26.57, 45, 63.43) that is not below
-the requested angle by more than 0.1 degree. Rounding up never lets the filter accept an
-overhang shallower than asked: 30 degrees is enforced as 45, 50 as 63.43. Along grid
-diagonals (3D) every rule is stricter than along the axes. See
-:func:`enforced_overhang_angle`.
-
-Exact logical helpers
----------------------
-:func:`supported_mask`, :func:`printable_part`, :func:`unsupported_count` and
-:func:`overhang_area` apply the same support rule to boolean (0/1) designs with plain
-logic, without smoothing; they are what the build analysis and the reports use.
+Keep-in elements (``keep``) are handled in one of two ways. ``keep_mode="print"``: they
+print as their input whatever lies below them (supports will be added under them) and
+hold up what is built on them. ``keep_mode="hold"``: the sweep treats them like any
+element, so they count as printed only when something holds them; the output still
+carries their input value (the analysis never loses them), and
+:meth:`PrintabilityFilter.keep_printed` gives their printed density for a constraint.
 """
 
 from __future__ import annotations
 
+import functools
+import itertools
 import math
 from dataclasses import dataclass
 
 import numba
 import numpy as np
 
+from filters.direction import AXIS_NAMES, element_heights, plate_level, unit_vector
+
 __all__ = [
+    "ANGLE_RANGE",
     "DIRECTIONS",
-    "REPRESENTABLE_ANGLES",
     "PrintabilityFilter",
+    "Stencil",
     "enforced_overhang_angle",
     "overhang_area",
     "printability_filter",
     "printable_part",
+    "support_stencil",
     "supported_mask",
     "unsupported_count",
 ]
 
-#: Axis build directions for 2D and 3D domains.
-DIRECTIONS = {2: ("+x", "-x", "+y", "-y"), 3: ("+x", "-x", "+y", "-y", "+z", "-z")}
+#: Axis build directions for 2D and 3D domains (vectors are accepted too).
+DIRECTIONS = AXIS_NAMES
 
-_AXIS_INDEX = {"x": 0, "y": 1, "z": 2}
+#: Overhang angles (degrees) the filter accepts.
+ANGLE_RANGE = (20.0, 70.0)
+
+_MAX_DEPTH = 12
+_MIN_EXCESS = 1.0  # degrees: the shallowest accepted overhang is at most this much steeper
+_MAX_EXCESS = 10.0  # degrees: ... and the steepest demanded at most this much
+_AZIMUTHS = 720
+
+
+# ----------------------------------------------------------------------------------
+# the support stencil
+# ----------------------------------------------------------------------------------
 
 
 @dataclass(frozen=True)
-class _SupportRule:
-    angle: float  # degrees, along a grid axis
-    reach: int  # lateral Manhattan reach in one layer
-    rise: int  # layers of column needed under a side neighbour
+class Stencil:
+    """The support stencil of one build direction and overhang angle.
+
+    Attributes
+    ----------
+    direction : ndarray
+        Unit build direction (3 entries; the third is 0 for a 2D domain).
+    overhang_angle : float
+        The angle asked, degrees.
+    depth : int
+        Reach ``D`` of the stencil along the build direction, elements.
+    offsets : ndarray of int, shape (N, 3)
+        Offset ``o`` of the foot ``q = p + o`` of each strut.
+    members : ndarray of int, shape (M, 3)
+        Elements every strut needs, foot first then upwards; strut ``k`` owns rows
+        ``starts[k]:starts[k + 1]``.
+    starts : ndarray of int, shape (N + 1,)
+    enforced_angle : float
+        Shallowest overhang (degrees) the stencil accepts in any direction around the
+        build axis: never below the angle asked.
+    steepest_angle : float
+        Steepest overhang it demands in the least favourable direction around the axis.
+    """
+
+    direction: np.ndarray
+    overhang_angle: float
+    depth: int
+    offsets: np.ndarray
+    members: np.ndarray
+    starts: np.ndarray
+    enforced_angle: float
+    steepest_angle: float
+
+    @property
+    def size(self) -> int:
+        """Number of struts (the ``Ns`` of the smooth maximum)."""
+        return int(self.offsets.shape[0])
 
 
-_RULES = (
-    _SupportRule(math.degrees(math.atan(0.5)), reach=2, rise=1),
-    _SupportRule(45.0, reach=1, rise=1),
-    _SupportRule(math.degrees(math.atan(2.0)), reach=1, rise=2),
-)
+def _strut(o: np.ndarray, d: np.ndarray) -> list[tuple[int, ...]] | None:
+    """Members of the strut of offset ``o``: its foot, then one element per unit of depth
+    on the way up; None when a member would not lie below the element held.
 
-#: The overhang angles (degrees) that the grid represents.
-REPRESENTABLE_ANGLES = tuple(rule.angle for rule in _RULES)
+    Each sample point of the line from the foot to the element held is taken to the
+    corner element of its cell that lies furthest towards the inside of a surface
+    through the line (up along ``d`` and sideways towards the foot): on a down-facing
+    plane at least as steep as the strut, that element is solid whenever the line is.
+    """
+    h = -float(o @ d)
+    n = math.ceil(h - 1e-9)
+    lateral = o + h * d
+    size = float(np.linalg.norm(lateral))
+    inside = d * size + (lateral / size if size > 1e-12 else 0.0) * h
+    out = [tuple(int(v) for v in o)]
+    for k in range(n - 1, 0, -1):
+        v = o * (k / n)
+        corners = itertools.product(*[sorted({math.floor(c + 1e-9), math.ceil(c - 1e-9)})
+                                      for c in v])
+        best, score = None, -math.inf
+        for c in corners:
+            u = np.array(c, dtype=float)
+            if -float(u @ d) <= 1e-9 or not any(c):
+                continue
+            value = float(u @ inside)
+            if value > score + 1e-12:
+                best, score = c, value
+        if best is None:
+            return None
+        key = tuple(int(c) for c in best)
+        if key != out[-1]:
+            out.append(key)
+    return out
 
-_ANGLE_RANGE = (26.5, 63.5)
-_ANGLE_SLACK = 0.1  # degrees a requested angle may exceed the enforced one
+
+def _lateral_directions(d: np.ndarray, ndim: int) -> np.ndarray:
+    """Unit vectors normal to ``d``: two in 2D, ``_AZIMUTHS`` around the axis in 3D."""
+    if ndim == 2:
+        side = np.array([-d[1], d[0], 0.0])
+        return np.array([side, -side])
+    helper = np.array([1.0, 0.0, 0.0]) if abs(d[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    e1 = np.cross(d, helper)
+    e1 /= np.linalg.norm(e1)
+    e2 = np.cross(d, e1)
+    t = np.linspace(0.0, 2.0 * math.pi, _AZIMUTHS, endpoint=False)
+    return np.cos(t)[:, None] * e1 + np.sin(t)[:, None] * e2
 
 
-def _rule_for(overhang_angle: float) -> _SupportRule:
+def _accepted_angles(offsets: np.ndarray, d: np.ndarray, ndim: int) -> np.ndarray:
+    """Shallowest overhang accepted per direction around the axis, degrees.
+
+    A down-facing plane whose overhang leans towards lateral direction ``a`` passes
+    when some strut reaches into the solid above it, that is when the strut's lateral
+    reach along ``a`` per unit of depth is at least cot(angle).
+    """
+    lateral = _lateral_directions(d, ndim)
+    if offsets.size == 0:
+        return np.full(lateral.shape[0], 90.0)
+    o = offsets.astype(float)
+    depth = -(o @ d)
+    reach = (o @ lateral.T) / depth[:, None]
+    best = np.maximum(reach.max(axis=0), 0.0)
+    return np.degrees(np.arctan2(1.0, best))
+
+
+def _candidates(d: np.ndarray, angle: float, depth: int, ndim: int):
+    beta = math.radians(90.0 - angle)
+    cos_b = math.cos(beta)
+    r = math.ceil(depth / cos_b) + 1
+    span = range(-r, r + 1)
+    third = span if ndim == 3 else (0,)
+    offsets, struts = [], []
+    for i, j, k in itertools.product(span, span, third):
+        o = np.array([i, j, k], dtype=float)
+        h = -float(o @ d)
+        if h <= 1e-9 or h > depth + 1e-9 or h < float(np.linalg.norm(o)) * cos_b - 1e-9:
+            continue
+        strut = _strut(o, d)
+        if strut is not None:
+            offsets.append((i, j, k))
+            struts.append(strut)
+    return offsets, struts
+
+
+def _prune(offsets, struts):
+    """Drop struts that need a superset of another strut's elements (never decisive)."""
+    sets = [frozenset(s) for s in struts]
+    keep = []
+    for a, sa in enumerate(sets):
+        redundant = any(
+            (sb < sa) or (sb == sa and b < a) for b, sb in enumerate(sets) if b != a
+        )
+        if not redundant:
+            keep.append(a)
+    return [offsets[a] for a in keep], [struts[a] for a in keep]
+
+
+@functools.lru_cache(maxsize=256)
+def _stencil_cached(d_key: tuple[float, ...], angle: float, ndim: int) -> Stencil:
+    d = np.array(d_key + (0.0,) * (3 - len(d_key)), dtype=float)
+    entries = []
+    for depth in range(1, _MAX_DEPTH + 1):
+        offsets, struts = _candidates(d, angle, depth, ndim)
+        accepted = _accepted_angles(np.array(offsets, dtype=float).reshape(-1, 3), d, ndim)
+        low, high = float(accepted.min()), float(accepted.max())
+        entries.append((depth, offsets, struts, low, high))
+        if low - angle <= _MIN_EXCESS and high - angle <= _MAX_EXCESS:
+            break
+    # the first depth meeting both bounds; else the closest shallowest angle, then the
+    # smallest spread around the axis
+    chosen = entries[-1]
+    if not (chosen[3] - angle <= _MIN_EXCESS and chosen[4] - angle <= _MAX_EXCESS):
+        chosen = min(entries, key=lambda en: (max(en[3] - angle, _MIN_EXCESS), en[4], en[0]))
+    depth, offsets, struts, low, high = chosen
+    offsets, struts = _prune(offsets, struts)
+    members = np.array([m for s in struts for m in s], dtype=np.int64).reshape(-1, 3)
+    starts = np.cumsum([0] + [len(s) for s in struts]).astype(np.int64)
+    return Stencil(
+        direction=d,
+        overhang_angle=angle,
+        depth=depth,
+        offsets=np.array(offsets, dtype=np.int64).reshape(-1, 3),
+        members=members,
+        starts=starts,
+        enforced_angle=low,
+        steepest_angle=high,
+    )
+
+
+def _check_angle(overhang_angle) -> float:
     if isinstance(overhang_angle, bool) or not isinstance(
         overhang_angle, (int, float, np.integer, np.floating)
     ):
@@ -116,122 +275,81 @@ def _rule_for(overhang_angle: float) -> _SupportRule:
             f"overhang_angle must be a number of degrees, got {type(overhang_angle).__name__}"
         )
     angle = float(overhang_angle)
-    low, high = _ANGLE_RANGE
+    low, high = ANGLE_RANGE
     if not (math.isfinite(angle) and low <= angle <= high):
-        shown = ", ".join(f"{a:.2f}" for a in REPRESENTABLE_ANGLES)
         raise ValueError(
-            f"overhang_angle must be between {low} and {high} degrees (the grid represents "
-            f"{shown} degrees; other angles in the range are rounded up), got {overhang_angle!r}"
+            f"overhang_angle must be between {low:g} and {high:g} degrees, got {overhang_angle!r}"
         )
-    for rule in _RULES:
-        if rule.angle >= angle - _ANGLE_SLACK:
-            return rule
-    raise AssertionError("unreachable: the range check covers every rule")  # pragma: no cover
+    return angle
 
 
-def enforced_overhang_angle(overhang_angle: float) -> float:
-    """Return the overhang angle the grid actually enforces for a requested angle.
+def support_stencil(direction, overhang_angle: float, ndim: int) -> Stencil:
+    """The support stencil for a build direction (name or vector) and overhang angle.
 
     Parameters
     ----------
+    direction : str or sequence of float
+        Build direction, an axis name such as ``"+z"`` or a vector.
     overhang_angle : float
-        Requested smallest printable angle between a down-facing surface and the build
-        plate, in degrees, within [26.5, 63.5].
+        Smallest printable angle between a down-facing surface and the plate, degrees,
+        within :data:`ANGLE_RANGE`.
+    ndim : int
+        2 or 3.
 
     Returns
     -------
-    float
-        The smallest representable angle (atan(1/2) = 26.57, 45 or atan(2) = 63.43
-        degrees) not below the request by more than 0.1 degree.
+    Stencil
 
-    Raises
-    ------
-    ValueError
-        If the angle lies outside [26.5, 63.5] degrees or is not finite.
-    TypeError
-        If the angle is not a number.
+    Examples
+    --------
+    >>> s = support_stencil("+y", 45.0, 2)
+    >>> s.depth, s.size, s.enforced_angle
+    (1, 3, 45.0)
+    >>> s = support_stencil([0.0, 1.0, 1.0], 40.0, 3)
+    >>> bool(40.0 <= s.enforced_angle <= 41.0)
+    True
+    """
+    angle = _check_angle(overhang_angle)
+    d = unit_vector(direction, ndim)
+    key = tuple(round(float(v), 12) + 0.0 for v in d)
+    return _stencil_cached(key, round(angle, 9), ndim)
+
+
+def enforced_overhang_angle(overhang_angle: float, direction="+z", ndim: int = 3) -> float:
+    """The overhang angle the grid actually enforces for a requested angle and direction.
+
+    The shallowest down-facing surface the support stencil accepts, over all directions
+    around the build axis: never below the angle asked, and within 1 degree of it for
+    the default choice of stencil depth (see :func:`support_stencil`).
 
     Examples
     --------
     >>> enforced_overhang_angle(45.0)
     45.0
-    >>> round(enforced_overhang_angle(30.0), 2), round(enforced_overhang_angle(60.0), 2)
-    (45.0, 63.43)
+    >>> bool(30.0 <= enforced_overhang_angle(30.0, "+y", 2) <= 31.0)
+    True
     """
-    return _rule_for(overhang_angle).angle
-
-
-def _check_direction(direction: str, ndim: int) -> tuple[int, int]:
-    allowed = DIRECTIONS.get(ndim)
-    if allowed is None:
-        raise ValueError(f"shape must have 2 or 3 axes, got {ndim}")
-    if not isinstance(direction, str) or direction not in allowed:
-        raise ValueError(
-            f"direction must be one of {', '.join(allowed)} for a {ndim}D domain, got {direction!r}"
-        )
-    return _AXIS_INDEX[direction[1]], (1 if direction[0] == "+" else -1)
-
-
-def _to_layers(a: np.ndarray, axis: int, sign: int) -> np.ndarray:
-    """Grid-shaped array -> (layers, lateral_a, lateral_b), layer 0 on the plate."""
-    v = np.moveaxis(a, axis, 0)
-    if sign < 0:
-        v = v[::-1]
-    if v.ndim == 2:
-        v = v[:, :, None]
-    return v
-
-
-def _from_layers(v: np.ndarray, axis: int, sign: int, ndim: int) -> np.ndarray:
-    if ndim == 2:
-        v = v[:, :, 0]
-    if sign < 0:
-        v = v[::-1]
-    return np.moveaxis(v, 0, axis)
-
-
-def _offsets(ndim: int, reach: int) -> np.ndarray:
-    """Lateral offsets with Manhattan length <= reach; (0, 0) first."""
-    out = [(0, 0)]
-    second = range(-reach, reach + 1) if ndim == 3 else (0,)
-    for da in range(-reach, reach + 1):
-        for db in second:
-            if (da, db) != (0, 0) and abs(da) + abs(db) <= reach:
-                out.append((da, db))
-    return np.array(out, dtype=np.int64)
+    return support_stencil(direction, overhang_angle, ndim).enforced_angle
 
 
 # ----------------------------------------------------------------------------------
-# smooth filter kernels (numba): arrays are (layers, a, b) in the build frame
+# sweeps (numba): flat arrays in C order over the grid, visited in order of height
 # ----------------------------------------------------------------------------------
 
 
 @numba.njit(cache=True)
-def _column(xi, ly, rise, eps, sq, col):  # noqa: D103 - kernel
-    # smin fold of the printed densities at layers ly-1 .. ly-rise; under the plate = solid
-    n_a, n_b = col.shape
-    for a in range(n_a):
-        for b in range(n_b):
-            v = xi[ly - 1, a, b]
-            for j in range(2, rise + 1):
-                if ly - j < 0:
-                    break
-                w = xi[ly - j, a, b]
-                d = v - w
-                v = 0.5 * (v + w - math.sqrt(d * d + eps) + sq)
-            col[a, b] = v
-
-
-@numba.njit(cache=True)
-def _candidate(xi, col, ly, a, b, da, db, rise):  # noqa: D103 - kernel
-    n_a, n_b = col.shape
-    aa = a + da
-    bb = b + db
-    if aa < 0 or aa >= n_a or bb < 0 or bb >= n_b:
-        return -1.0, aa, bb, False  # outside the domain: no support
-    if rise == 1 or (da == 0 and db == 0):
-        return max(xi[ly - 1, aa, bb], 0.0), aa, bb, True
-    return max(col[aa, bb], 0.0), aa, bb, False
+def _locate(e, m, shape, d, plate):  # noqa: D103 - kernel
+    # flat index of element e moved by member offset m; -1 outside the domain (then
+    # the second value says whether the place's centre lies on or under the plate,
+    # which holds everything: 1.0, else 0.0)
+    n0, n1, n2 = shape[0], shape[1], shape[2]
+    i = e // (n1 * n2) + m[0]
+    j = (e // n2) % n1 + m[1]
+    k = e % n2 + m[2]
+    if 0 <= i < n0 and 0 <= j < n1 and 0 <= k < n2:
+        return (i * n1 + j) * n2 + k, 0.0
+    centre = (i + 0.5) * d[0] + (j + 0.5) * d[1] + (k + 0.5) * d[2]
+    return -1, 1.0 if centre <= plate + 1e-9 else 0.0
 
 
 @numba.njit(cache=True)
@@ -252,112 +370,162 @@ def _power(r, p, p_int):  # noqa: D103 - kernel
 
 
 @numba.njit(cache=True)
-def _forward_kernel(x, keep, offsets, rise, eps, p, p_int, q, xi, support, top, psum):  # noqa: D103
-    # Also stores, per element, the largest support value (top) and the scaled P-sum
-    # (psum) so that backward needs no second pass over the support region. Elements
-    # with keep = 1 print as their input whatever lies below (xi = x).
-    n_l, n_a, n_b = x.shape
-    sq = math.sqrt(eps)
-    n_s = offsets.shape[0]
-    col = np.zeros((n_a, n_b))
-    for a in range(n_a):
-        for b in range(n_b):
-            xi[0, a, b] = x[0, a, b]
-            support[0, a, b] = 1.0
-            top[0, a, b] = 0.0
-            psum[0, a, b] = 0.0
-    for ly in range(1, n_l):
-        if rise > 1:
-            _column(xi, ly, rise, eps, sq, col)
-        for a in range(n_a):
-            for b in range(n_b):
-                m = 0.0
-                for n in range(n_s):
-                    c, _, _, _ = _candidate(xi, col, ly, a, b, offsets[n, 0], offsets[n, 1], rise)
-                    if c > m:
-                        m = c
-                big = 0.0
-                s = 0.0
-                if m > 0.0:
-                    for n in range(n_s):
-                        c, _, _, _ = _candidate(
-                            xi, col, ly, a, b, offsets[n, 0], offsets[n, 1], rise
-                        )
-                        if c > 0.0:
-                            s += _power(c / m, p, p_int)
-                    # (sum c^P)^(1/Q) scaled by the largest value, so nothing underflows
-                    big = m ** (p / q) * s ** (1.0 / q)
-                top[ly, a, b] = m
-                psum[ly, a, b] = s
-                support[ly, a, b] = big
-                if keep[ly, a, b]:
-                    xi[ly, a, b] = x[ly, a, b]
-                    continue
-                d = x[ly, a, b] - big
-                xi[ly, a, b] = 0.5 * (x[ly, a, b] + big - math.sqrt(d * d + eps) + sq)
+def _smin(a, b, eps, sq):  # noqa: D103 - kernel
+    t = a - b
+    return 0.5 * (a + b - math.sqrt(t * t + eps) + sq)
 
 
 @numba.njit(cache=True)
-def _backward_kernel(x, keep, xi, support, top, psum, offsets, rise, eps, p, p_int, q, dy, dx):  # noqa: D103
-    n_l, n_a, n_b = x.shape
+def _logical_sweep(solid, order, on_plate, shape, d, plate, members, starts, printed_only):  # noqa: D103
+    out = np.zeros(solid.size, dtype=np.bool_)
+    n_s = starts.size - 1
+    for e in order:
+        if not solid[e]:
+            continue
+        if on_plate[e]:
+            out[e] = True
+            continue
+        held = False
+        for s in range(n_s):
+            ok = True
+            for t in range(starts[s], starts[s + 1]):
+                idx, under = _locate(e, members[t], shape, d, plate)
+                if idx < 0:
+                    ok = under > 0.5
+                else:
+                    ok = out[idx] if printed_only else solid[idx]
+                if not ok:
+                    break
+            if ok:
+                held = True
+                break
+        out[e] = held
+    return out
+
+
+@numba.njit(cache=True)
+def _forward_kernel(x, keep, hold, order, on_plate, shape, d, plate, members, starts,
+                    eps, p, p_int, q, xi, big, top, psum):  # noqa: D103
+    # Stores per element the smooth maximum (big), its largest input (top) and the
+    # scaled P-sum (psum), so that the backward sweep needs no second maximum.
     sq = math.sqrt(eps)
-    n_s = offsets.shape[0]
-    lam = dy.copy()  # adjoint of the printed density, completed layer by layer downwards
-    col = np.zeros((n_a, n_b))
-    gcol = np.zeros((n_a, n_b))
-    fold = np.zeros(rise + 1)
-    for ly in range(n_l - 1, 0, -1):
-        if rise > 1:
-            _column(xi, ly, rise, eps, sq, col)
-            gcol[:, :] = 0.0
-        for a in range(n_a):
-            for b in range(n_b):
-                g = lam[ly, a, b]
-                if keep[ly, a, b]:
-                    dx[ly, a, b] = g  # xi = x: nothing flows to the supports below
-                    continue
-                big = support[ly, a, b]
-                d = x[ly, a, b] - big
-                r = math.sqrt(d * d + eps)
-                dx[ly, a, b] = g * 0.5 * (1.0 - d / r)
-                gbig = g * 0.5 * (1.0 + d / r)
-                m = top[ly, a, b]
-                if gbig == 0.0 or m == 0.0:
-                    continue  # all supports zero: the smax gradient vanishes in the limit
-                coef = gbig * (p / q) * m ** (p / q - 1.0) * psum[ly, a, b] ** (1.0 / q - 1.0)
-                for n in range(n_s):
-                    c, aa, bb, direct = _candidate(
-                        xi, col, ly, a, b, offsets[n, 0], offsets[n, 1], rise
-                    )
-                    if c <= 0.0:
-                        continue
-                    gc = coef * _power(c / m, p - 1.0, p_int - 1)
-                    if direct:
-                        lam[ly - 1, aa, bb] += gc
-                    else:
-                        gcol[aa, bb] += gc
-        if rise > 1:
-            last = min(rise, ly)
-            for a in range(n_a):
-                for b in range(n_b):
-                    gf = gcol[a, b]
-                    if gf == 0.0:
-                        continue
-                    fold[1] = xi[ly - 1, a, b]
-                    for j in range(2, last + 1):
-                        w = xi[ly - j, a, b]
-                        dd = fold[j - 1] - w
-                        fold[j] = 0.5 * (fold[j - 1] + w - math.sqrt(dd * dd + eps) + sq)
-                    for j in range(last, 1, -1):
-                        w = xi[ly - j, a, b]
-                        dd = fold[j - 1] - w
-                        r = math.sqrt(dd * dd + eps)
-                        lam[ly - j, a, b] += gf * 0.5 * (1.0 + dd / r)
-                        gf *= 0.5 * (1.0 - dd / r)
-                    lam[ly - 1, a, b] += gf
-    for a in range(n_a):
-        for b in range(n_b):
-            dx[0, a, b] = lam[0, a, b]
+    n_s = starts.size - 1
+    vals = np.zeros(max(n_s, 1))
+    for e in order:
+        if on_plate[e]:
+            xi[e] = x[e]
+            big[e] = 1.0
+            top[e] = 0.0
+            psum[e] = 0.0
+            continue
+        m = 0.0
+        for s in range(n_s):
+            v = 1.0
+            for t in range(starts[s], starts[s + 1]):
+                idx, under = _locate(e, members[t], shape, d, plate)
+                w = xi[idx] if idx >= 0 else under
+                v = w if t == starts[s] else _smin(v, w, eps, sq)
+            vals[s] = v
+            if v > m:
+                m = v
+        b = 0.0
+        acc = 0.0
+        if m > 0.0:
+            for s in range(n_s):
+                if vals[s] > 0.0:
+                    acc += _power(vals[s] / m, p, p_int)
+            # (sum v^P)^(1/Q) scaled by the largest value, so nothing underflows
+            b = m ** (p / q) * acc ** (1.0 / q)
+        big[e] = b
+        top[e] = m
+        psum[e] = acc
+        if keep[e] and not hold:
+            xi[e] = x[e]
+        else:
+            xi[e] = _smin(x[e], b, eps, sq)
+
+
+@numba.njit(cache=True)
+def _backward_kernel(x, keep, hold, order, on_plate, shape, d, plate, members, starts,
+                     eps, p, p_int, q, xi, big, top, psum, lam, dx):  # noqa: D103
+    # lam enters as the seed (adjoint of xi) and is completed in falling height
+    sq = math.sqrt(eps)
+    n_s = starts.size - 1
+    width = 1
+    for s in range(n_s):
+        width = max(width, starts[s + 1] - starts[s])
+    fold = np.zeros(width)
+    where = np.zeros(width, dtype=np.int64)
+    for n in range(order.size - 1, -1, -1):
+        e = order[n]
+        g = lam[e]
+        if on_plate[e] or (keep[e] and not hold):
+            dx[e] = g
+            continue
+        b = big[e]
+        t0 = x[e] - b
+        r = math.sqrt(t0 * t0 + eps)
+        dx[e] = g * 0.5 * (1.0 - t0 / r)
+        gb = g * 0.5 * (1.0 + t0 / r)
+        m = top[e]
+        if gb == 0.0 or m == 0.0:
+            continue  # all supports zero: the smax gradient vanishes in the limit
+        coef = gb * (p / q) * m ** (p / q - 1.0) * psum[e] ** (1.0 / q - 1.0)
+        for s in range(n_s):
+            length = starts[s + 1] - starts[s]
+            v = 1.0
+            for u in range(length):
+                idx, under = _locate(e, members[starts[s] + u], shape, d, plate)
+                w = xi[idx] if idx >= 0 else under
+                where[u] = idx
+                v = w if u == 0 else _smin(v, w, eps, sq)
+                fold[u] = v
+            if v <= 0.0:
+                continue
+            gv = coef * _power(v / m, p - 1.0, p_int - 1)
+            for u in range(length - 1, 0, -1):
+                idx = where[u]
+                w = xi[idx] if idx >= 0 else 1.0
+                if idx < 0:
+                    _, w = _locate(e, members[starts[s] + u], shape, d, plate)
+                t1 = fold[u - 1] - w
+                r1 = math.sqrt(t1 * t1 + eps)
+                if idx >= 0:
+                    lam[idx] += gv * 0.5 * (1.0 + t1 / r1)
+                gv *= 0.5 * (1.0 - t1 / r1)
+            if where[0] >= 0:
+                lam[where[0]] += gv
+
+
+# ----------------------------------------------------------------------------------
+# the grid set-up shared by the smooth filter and the logical helpers
+# ----------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Sweep:
+    shape3: np.ndarray  # grid shape padded to 3 entries
+    stencil: Stencil
+    order: np.ndarray  # flat indices by rising height
+    on_plate: np.ndarray  # flat, bool
+    plate: float
+
+
+def _sweep_setup(shape, direction, overhang_angle, plate_offset: float = 0.0) -> _Sweep:
+    shape = tuple(int(n) for n in shape)
+    ndim = len(shape)
+    stencil = support_stencil(direction, overhang_angle, ndim)
+    d = stencil.direction
+    heights = element_heights(shape, d[:ndim]).ravel()
+    plate = plate_level(shape, d[:ndim], plate_offset)
+    lowest = heights - 0.5 * float(np.abs(d).sum())
+    return _Sweep(
+        shape3=np.array(shape + (1,) * (3 - ndim), dtype=np.int64),
+        stencil=stencil,
+        order=np.argsort(heights, kind="stable").astype(np.int64),
+        on_plate=lowest <= plate + 1e-9,
+        plate=plate,
+    )
 
 
 class PrintabilityFilter:
@@ -367,23 +535,29 @@ class PrintabilityFilter:
     ``backward`` is the vector-Jacobian product at that input.
     """
 
-    def __init__(self, shape, *, direction, overhang_angle, epsilon, p, xi0, keep=None):
+    def __init__(self, shape, *, direction, overhang_angle, epsilon, p, xi0, keep=None,
+                 keep_mode="print", plate_offset=0.0):
         self.shape = tuple(int(n) for n in shape)
+        ndim = len(self.shape)
+        self.vector = unit_vector(direction, ndim)
         self.direction = direction
-        self._axis, self._sign = _check_direction(direction, len(self.shape))
         if keep is None:
             keep = np.zeros(self.shape, dtype=bool)
         keep = np.asarray(keep)
         if keep.shape != self.shape or keep.dtype != bool:
             raise ValueError(f"keep must be a boolean array of shape {self.shape}, got "
                              f"{keep.dtype} {keep.shape}")
-        self._keep = np.ascontiguousarray(_to_layers(keep, self._axis, self._sign)).astype(np.uint8)
-        rule = _rule_for(overhang_angle)
+        if keep_mode not in ("print", "hold"):
+            raise ValueError(f"keep_mode must be 'print' or 'hold', got {keep_mode!r}")
+        self.keep = keep
+        self.keep_mode = keep_mode
+        self._keep = np.ascontiguousarray(keep.ravel())
+        self._sweep = _sweep_setup(self.shape, direction, overhang_angle, plate_offset)
+        stencil = self._sweep.stencil
         self.overhang_angle = float(overhang_angle)
-        self.enforced_angle = rule.angle
-        self.reach, self.rise = rule.reach, rule.rise
-        self._offsets = _offsets(len(self.shape), rule.reach)
-        self.support_size = int(self._offsets.shape[0])
+        self.enforced_angle = stencil.enforced_angle
+        self.steepest_angle = stencil.steepest_angle
+        self.support_size = max(stencil.size, 1)
         self.epsilon, self.p, self.xi0 = float(epsilon), float(p), float(xi0)
         # integer exponents up to 64 take the fast path of _power
         self._p_int = int(self.p) if self.p == int(self.p) and 1 <= self.p <= 64 else -1
@@ -401,72 +575,73 @@ class PrintabilityFilter:
             f"enforced_angle={self.enforced_angle:.2f})"
         )
 
-    def _frame(self, a: np.ndarray, name: str) -> np.ndarray:
+    def _flat(self, a: np.ndarray, name: str) -> np.ndarray:
         arr = np.asarray(a, dtype=float)
         if arr.shape != self.shape:
             raise ValueError(f"{name} must have shape {self.shape}, got {arr.shape}")
         if not np.all(np.isfinite(arr)):
             raise ValueError(f"{name} must be finite")
-        return np.ascontiguousarray(_to_layers(arr, self._axis, self._sign))
+        return np.ascontiguousarray(arr.ravel())
+
+    def _args(self):
+        sw = self._sweep
+        st = sw.stencil
+        return (self._keep, self.keep_mode == "hold", sw.order, sw.on_plate, sw.shape3,
+                st.direction, sw.plate, st.members, st.starts, self.epsilon, self.p,
+                self._p_int, self.q)
 
     def forward(self, x: np.ndarray) -> np.ndarray:
         """Return the printed density of the blueprint density ``x`` (grid shape)."""
-        xl = self._frame(x, "x")
-        if xl.size and xl.min() < -1e-9:
-            raise ValueError(f"x must be non-negative, got a minimum of {xl.min():.3g}")
-        xi, support, top, psum = (np.empty_like(xl) for _ in range(4))
-        _forward_kernel(
-            xl,
-            self._keep,
-            self._offsets,
-            self.rise,
-            self.epsilon,
-            self.p,
-            self._p_int,
-            self.q,
-            xi,
-            support,
-            top,
-            psum,
-        )
-        self._last = (xl, xi, support, top, psum)
-        return np.ascontiguousarray(_from_layers(xi, self._axis, self._sign, len(self.shape)))
+        xf = self._flat(x, "x")
+        if xf.size and xf.min() < -1e-9:
+            raise ValueError(f"x must be non-negative, got a minimum of {xf.min():.3g}")
+        xi, big, top, psum = (np.zeros_like(xf) for _ in range(4))
+        _forward_kernel(xf, *self._args(), xi, big, top, psum)
+        self._last = (xf, xi, big, top, psum)
+        out = xi if self.keep_mode == "print" else np.where(self._keep, xf, xi)
+        return out.reshape(self.shape)
+
+    def _reverse(self, seed: np.ndarray) -> np.ndarray:
+        if self._last is None:
+            raise ValueError("backward needs a forward call first")
+        xf, xi, big, top, psum = self._last
+        dx = np.zeros_like(xf)
+        _backward_kernel(xf, *self._args(), xi, big, top, psum, seed, dx)
+        return dx
 
     def backward(self, dy: np.ndarray) -> np.ndarray:
         """Vector-Jacobian product ``J(x)^T dy`` at the last ``forward`` input."""
+        dyf = self._flat(dy, "dy")
+        if self.keep_mode == "print":
+            return self._reverse(dyf.copy()).reshape(self.shape)
+        # held keep-in elements pass their input straight to the output
+        dx = self._reverse(np.where(self._keep, 0.0, dyf))
+        return (dx + np.where(self._keep, dyf, 0.0)).reshape(self.shape)
+
+    def keep_printed(self) -> np.ndarray:
+        """Printed density the last ``forward`` gave the keep-in elements (1-D array)."""
         if self._last is None:
-            raise ValueError("backward needs a forward call first")
-        dyl = self._frame(dy, "dy")
-        xl, xi, support, top, psum = self._last
-        dx = np.empty_like(xl)
-        _backward_kernel(
-            xl,
-            self._keep,
-            xi,
-            support,
-            top,
-            psum,
-            self._offsets,
-            self.rise,
-            self.epsilon,
-            self.p,
-            self._p_int,
-            self.q,
-            dyl,
-            dx,
-        )
-        return np.ascontiguousarray(_from_layers(dx, self._axis, self._sign, len(self.shape)))
+            raise ValueError("keep_printed needs a forward call first")
+        return self._last[1][self._keep].copy()
+
+    def keep_printed_backward(self, weights: np.ndarray) -> np.ndarray:
+        """Gradient of ``sum(weights * keep_printed())`` with respect to the input."""
+        seed = np.zeros(self._keep.size)
+        seed[self._keep] = np.asarray(weights, dtype=float)
+        return self._reverse(seed).reshape(self.shape)
 
 
 def printability_filter(
     shape: tuple[int, ...],
     *,
-    direction: str,
+    direction,
     overhang_angle: float = 45.0,
     epsilon: float = 1e-4,
     p: float = 40.0,
     xi0: float = 0.5,
     keep: np.ndarray | None = None,
+    keep_mode: str = "print",
+    plate_offset: float = 0.0,
 ) -> PrintabilityFilter:
     """Make the smoothed layer-wise printability filter for a grid and build direction.
 
@@ -474,11 +649,12 @@ def printability_filter(
     ----------
     shape : tuple of int
         Elements along x, y (and z).
-    direction : str
-        Build direction, ``"+x"``, ``"-x"``, ``"+y"``, ``"-y"`` (and ``"+z"``, ``"-z"``
-        in 3D). ``"+y"`` stacks layers towards +y with the plate at y = 0.
+    direction : str or sequence of float
+        Build direction: ``"+x"``, ``"-x"``, ``"+y"``, ``"-y"`` (and ``"+z"``, ``"-z"``
+        in 3D), or a vector of 2 (3) numbers. ``"+y"`` stacks layers towards +y with the
+        plate at y = 0; a vector puts the plate through the domain's lowest corner.
     overhang_angle : float
-        Smallest printable angle from the plate in degrees; see
+        Smallest printable angle from the plate in degrees, 20 to 70; see
         :func:`enforced_overhang_angle` for the angle actually enforced.
     epsilon : float
         Smoothing parameter of the smooth minimum (> 0).
@@ -487,9 +663,14 @@ def printability_filter(
     xi0 : float
         Density at which the smooth maximum is exact for equal inputs, in (0, 1).
     keep : ndarray of bool, optional
-        Elements that print as they are whatever lies below them: keep-in regions the
-        user requires, which build preparation will support if the design does not.
-        They support the elements above them like any printed element.
+        Keep-in elements (see ``keep_mode``).
+    keep_mode : {"print", "hold"}
+        ``"print"``: keep-in elements print as their input whatever lies below them.
+        ``"hold"``: they print only when held like any element; the output keeps their
+        input value and :meth:`PrintabilityFilter.keep_printed` reports their printed
+        density.
+    plate_offset : float
+        Raise the plate along the build direction by this many element edges.
 
     Returns
     -------
@@ -507,7 +688,8 @@ def printability_filter(
         raise ValueError(f"shape must be a tuple of 2 or 3 element counts, got {shape!r}")
     if any(isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1 for n in shape):
         raise ValueError(f"shape entries must be positive integers, got {shape!r}")
-    for name, value in (("epsilon", epsilon), ("p", p), ("xi0", xi0)):
+    for name, value in (("epsilon", epsilon), ("p", p), ("xi0", xi0),
+                        ("plate_offset", plate_offset)):
         if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
             raise TypeError(f"{name} must be a number, got {type(value).__name__}")
     if not (math.isfinite(epsilon) and epsilon > 0):
@@ -516,9 +698,11 @@ def printability_filter(
         raise ValueError(f"p must be positive, got {p!r}")
     if not (0.0 < xi0 < 1.0):
         raise ValueError(f"xi0 must lie in (0, 1), got {xi0!r}")
+    if not (math.isfinite(plate_offset) and plate_offset >= 0):
+        raise ValueError(f"plate_offset must be a finite number >= 0, got {plate_offset!r}")
     return PrintabilityFilter(
-        shape, direction=direction, overhang_angle=overhang_angle, epsilon=epsilon, p=p, xi0=xi0,
-        keep=keep,
+        shape, direction=direction, overhang_angle=overhang_angle, epsilon=epsilon, p=p,
+        xi0=xi0, keep=keep, keep_mode=keep_mode, plate_offset=plate_offset,
     )
 
 
@@ -536,70 +720,32 @@ def _as_solid(solid: np.ndarray) -> np.ndarray:
     return arr > 0.5  # a density array is read at the 0.5 level
 
 
-def _shifted(layer: np.ndarray, da: int, db: int) -> np.ndarray:
-    """out[a, b] = layer[a + da, b + db], False outside the domain."""
-    n_a, n_b = layer.shape
-    out = np.zeros_like(layer)
-    a0, a1 = max(0, -da), min(n_a, n_a - da)
-    b0, b1 = max(0, -db), min(n_b, n_b - db)
-    if a0 < a1 and b0 < b1:
-        out[a0:a1, b0:b1] = layer[a0 + da : a1 + da, b0 + db : b1 + db]
-    return out
-
-
-def _has_support(below: np.ndarray, ly: int, offsets: np.ndarray, rise: int) -> np.ndarray:
-    """Whether the support region of each element of layer index ly (>= 1) holds solid."""
-    direct = below[ly - 1]
-    if rise > 1:
-        column = below[ly - 1].copy()
-        for j in range(2, rise + 1):
-            if ly - j < 0:
-                break  # under the plate counts as solid
-            column &= below[ly - j]
-    else:
-        column = direct
-    found = direct.copy()
-    for da, db in offsets[1:]:
-        found |= _shifted(column, int(da), int(db))
-    return found
-
-
-def _prepare(solid, direction, overhang_angle):
+def _logical(solid, direction, overhang_angle, plate_offset, *, printed_only):
     arr = _as_solid(solid)
-    axis, sign = _check_direction(direction, arr.ndim)
-    rule = _rule_for(overhang_angle)
-    return arr, axis, sign, _offsets(arr.ndim, rule.reach), rule.rise
-
-
-def _layer_sweep(solid, direction, overhang_angle, *, printed_only: bool) -> np.ndarray:
-    """Solid elements with support below, layer by layer from the plate.
-
-    ``printed_only`` counts as support only what itself printed (the printable part);
-    otherwise any solid element below counts (the supported mask).
-    """
-    arr, axis, sign, offsets, rise = _prepare(solid, direction, overhang_angle)
-    layers = _to_layers(arr, axis, sign)
-    out = np.zeros_like(layers)
-    if layers.shape[0]:
-        out[0] = layers[0]
-    for ly in range(1, layers.shape[0]):
-        out[ly] = layers[ly] & _has_support(out if printed_only else layers, ly, offsets, rise)
-    return _from_layers(out, axis, sign, arr.ndim).copy()
+    if arr.ndim not in (2, 3):
+        raise ValueError(f"solid must have 2 or 3 axes, got {arr.ndim}")
+    sw = _sweep_setup(arr.shape, direction, overhang_angle, plate_offset)
+    st = sw.stencil
+    out = _logical_sweep(np.ascontiguousarray(arr.ravel()), sw.order, sw.on_plate, sw.shape3,
+                         st.direction, sw.plate, st.members, st.starts, printed_only)
+    return out.reshape(arr.shape)
 
 
 def supported_mask(
-    solid: np.ndarray, *, direction: str, overhang_angle: float = 45.0
+    solid: np.ndarray, *, direction, overhang_angle: float = 45.0, plate_offset: float = 0.0
 ) -> np.ndarray:
-    """Solid elements that rest on the plate or have solid in their support region below.
+    """Solid elements that rest on the plate or stand on a solid strut of the stencil.
 
     Parameters
     ----------
     solid : ndarray of bool (or density, read at the 0.5 level)
         Design in grid shape (x, y[, z]).
-    direction : str
-        Build direction, e.g. ``"+y"``.
+    direction : str or sequence of float
+        Build direction, e.g. ``"+y"`` or ``[1.0, 1.0]``.
     overhang_angle : float
         Overhang angle in degrees (see :func:`enforced_overhang_angle`).
+    plate_offset : float
+        Raise of the plate along the direction, element edges.
 
     Returns
     -------
@@ -612,30 +758,16 @@ def supported_mask(
     >>> supported_mask(s, direction="+y").astype(int).tolist()
     [[1, 1, 0], [0, 0, 0], [0, 0, 0]]
     """
-    return _layer_sweep(solid, direction, overhang_angle, printed_only=False)
+    return _logical(solid, direction, overhang_angle, plate_offset, printed_only=False)
 
 
 def printable_part(
-    solid: np.ndarray, *, direction: str, overhang_angle: float = 45.0
+    solid: np.ndarray, *, direction, overhang_angle: float = 45.0, plate_offset: float = 0.0
 ) -> np.ndarray:
-    """Return what actually prints, by a plain logical layer sweep from the plate.
+    """Return what actually prints, by a plain logical sweep from the plate.
 
-    An element prints when it is solid and the support region below it holds printed
-    elements (layer 0 always rests on the plate).
-
-    Parameters
-    ----------
-    solid : ndarray of bool (or density, read at the 0.5 level)
-        Design in grid shape.
-    direction : str
-        Build direction.
-    overhang_angle : float
-        Overhang angle in degrees.
-
-    Returns
-    -------
-    ndarray of bool
-        The printed part, a subset of ``solid``.
+    An element prints when it is solid and rests on the plate, or a strut of its
+    support stencil below it prints.
 
     Examples
     --------
@@ -643,25 +775,13 @@ def printable_part(
     >>> printable_part(s, direction="+y").astype(int).tolist()
     [[1, 0, 0, 0], [0, 0, 0, 0], [0, 0, 0, 0]]
     """
-    return _layer_sweep(solid, direction, overhang_angle, printed_only=True)
+    return _logical(solid, direction, overhang_angle, plate_offset, printed_only=True)
 
 
-def unsupported_count(solid: np.ndarray, *, direction: str, overhang_angle: float = 45.0) -> int:
-    """Count solid elements with no solid element in their support region below.
-
-    Parameters
-    ----------
-    solid : ndarray of bool (or density, read at the 0.5 level)
-        Design in grid shape.
-    direction : str
-        Build direction.
-    overhang_angle : float
-        Overhang angle in degrees.
-
-    Returns
-    -------
-    int
-        Zero exactly when the design is its own printable part.
+def unsupported_count(
+    solid: np.ndarray, *, direction, overhang_angle: float = 45.0, plate_offset: float = 0.0
+) -> int:
+    """Count solid elements with no solid strut of their support stencil below them.
 
     Examples
     --------
@@ -669,41 +789,25 @@ def unsupported_count(solid: np.ndarray, *, direction: str, overhang_angle: floa
     1
     """
     arr = _as_solid(solid)
-    mask = supported_mask(arr, direction=direction, overhang_angle=overhang_angle)
+    mask = supported_mask(arr, direction=direction, overhang_angle=overhang_angle,
+                          plate_offset=plate_offset)
     return int(np.count_nonzero(arr & ~mask))
 
 
 def overhang_area(
     solid: np.ndarray,
     *,
-    direction: str,
+    direction,
     overhang_angle: float = 45.0,
     element_size: float,
     thickness: float = 1.0,
+    plate_offset: float = 0.0,
 ) -> float:
     """Area of down-facing faces that violate the overhang rule.
 
-    The bottom face of every unsupported solid element faces powder (the element
-    directly below is part of its support region, so it is void) and needs support.
-    The area is that face count times ``element_size * thickness`` in 2D (a length times
-    the out-of-plane thickness) or ``element_size**2`` in 3D.
-
-    Parameters
-    ----------
-    solid : ndarray of bool (or density, read at the 0.5 level)
-        Design in grid shape.
-    direction : str
-        Build direction.
-    overhang_angle : float
-        Overhang angle in degrees.
-    element_size : float
-        Edge length of an element.
-    thickness : float
-        Out-of-plane thickness (2D only).
-
-    Returns
-    -------
-    float
+    Each unsupported solid element is counted with one face of ``element_size *
+    thickness`` (2D: a length times the out-of-plane thickness) or ``element_size**2``
+    (3D): the face it turns to the powder below.
 
     Examples
     --------
@@ -714,4 +818,5 @@ def overhang_area(
         raise ValueError(f"element_size must be a positive number, got {element_size!r}")
     arr = _as_solid(solid)
     face = element_size * thickness if arr.ndim == 2 else element_size**2
-    return unsupported_count(arr, direction=direction, overhang_angle=overhang_angle) * face
+    return unsupported_count(arr, direction=direction, overhang_angle=overhang_angle,
+                             plate_offset=plate_offset) * face
