@@ -16,8 +16,10 @@ import argparse
 import math
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import numpy as np
+if TYPE_CHECKING:  # numpy is imported inside the functions: building the command line's
+    import numpy as np  # parser (`buttress --help`) must not load it
 
 HELP = "check a design for overhangs, supports, trapped powder, build time and cost"
 
@@ -120,6 +122,8 @@ def parse_directions(text: str | None, ndim: int) -> list[str] | None:
 
 
 def _load_array(path: Path) -> np.ndarray:
+    import numpy as np
+
     try:
         loaded = np.load(path, allow_pickle=False)
     except (OSError, ValueError, EOFError) as exc:
@@ -308,6 +312,8 @@ _COLOURS = {
 
 def _panel_image(masks, direction: str) -> np.ndarray:
     """RGB image in the build frame (rows = layers from the plate, columns = across)."""
+    import numpy as np
+
     from topopt.build import first_occupied_layer, to_build_frame
 
     # the analysis places the part on the plate; so does the picture
@@ -339,6 +345,7 @@ def _panel_image(masks, direction: str) -> np.ndarray:
 def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -> None:
     """One panel per direction (build direction up, plate at the bottom) and bar charts."""
     import matplotlib
+    import numpy as np
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt

@@ -13,7 +13,8 @@ import signal
 import sys
 from pathlib import Path
 
-import numpy as np
+# numpy and the solver stack are imported inside the functions: building the command
+# line's parser (`buttress --help`) must not load them.
 
 HELP = "optimise a problem file into a results folder"
 CHECKPOINT = "checkpoint.npz"
@@ -41,6 +42,8 @@ def problem_digest(problem) -> str:
 
 def save_checkpoint(path: Path, state: dict, digest: str) -> None:
     """Write the loop state as plain arrays (no pickled objects)."""
+    import numpy as np
+
     from topopt.export import history_columns, write_npz
 
     history = state["history"]
@@ -54,6 +57,8 @@ def save_checkpoint(path: Path, state: dict, digest: str) -> None:
 def load_checkpoint(path: Path, digest: str) -> dict:
     """Read a checkpoint written by :func:`save_checkpoint`; check it belongs to the problem."""
     import zipfile
+
+    import numpy as np
 
     try:
         # Our own handle: np.load leaks the one it opens when the zip is damaged.
@@ -81,7 +86,7 @@ def load_checkpoint(path: Path, digest: str) -> dict:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``buttress optimize``."""
-    from topopt import optimize
+    from topopt.driver import optimize
     from topopt.export import write_results
     from topopt.problem import load_problem
 
