@@ -41,6 +41,7 @@ PROCESS_DEFAULTS: dict[str, float] = {
 #: Fields of one direction's report, in the order written to inspect.json / inspect.csv.
 REPORT_FIELDS = (
     "direction",
+    "vector",
     "overhang_angle",
     "build_height",
     "layers",
@@ -91,10 +92,12 @@ class BuildReport:
     build_time_h: float
     material_cost: float
     score: float = float("nan")
+    vector: tuple[float, ...] = ()
 
     def as_dict(self) -> dict:
         """Plain dict in :data:`REPORT_FIELDS` order (JSON-ready)."""
         data = asdict(self)
+        data["vector"] = [float(v) for v in self.vector]
         return {name: data[name] for name in REPORT_FIELDS}
 
 
@@ -117,6 +120,39 @@ class BuildMasks:
     accessible: np.ndarray
     trapped: np.ndarray
     trapped_cavities: int
+    #: tilted directions only (see :mod:`topopt.tilted`): column lengths in element
+    #: edges of one element cross-section, and the part's extent along the direction
+    support_length: float | None = None
+    on_plate_length: float | None = None
+    unremovable_length: float | None = None
+    height: float | None = None
+
+
+def axis_name(direction, ndim: int) -> str | None:
+    """The axis name of a direction given as a name or vector, or None when tilted.
+
+    Examples
+    --------
+    >>> axis_name([0.0, -2.0], 2), axis_name([1.0, 1.0], 2)
+    ('-y', None)
+    """
+    from filters.direction import direction_label
+
+    label = direction_label(direction, ndim)
+    return label if label in all_directions(ndim) else None
+
+
+def _open_void_masks(solid: np.ndarray, width: int, through_holes: bool):
+    """Accessible and trapped void with every side of the domain open (tilted builds)."""
+    pad = [(width + 1, 0)] + [(0, 0)] * (solid.ndim - 1)
+    padded = np.pad(solid, pad, constant_values=False)
+    crop = (slice(width + 1, None),) + (slice(None),) * (solid.ndim - 1)
+    if through_holes and solid.ndim == 2:
+        accessible = accessible_void(padded, width_voxels=width, from_anywhere=True)[crop]
+        return accessible, np.zeros_like(solid), 0
+    accessible = accessible_void(padded, width_voxels=width)[crop]
+    trapped, count = trapped_void(padded)
+    return accessible, trapped[crop], count
 
 
 def parse_direction(direction: str, ndim: int) -> tuple[int, int]:
@@ -185,9 +221,12 @@ def solid_voxels(design: np.ndarray) -> np.ndarray:
 
 
 def _check_angle(overhang_angle: float) -> float:
+    from filters.printability import ANGLE_RANGE
+
     angle = float(overhang_angle)
-    if not 0.0 < angle < 90.0:
-        raise ValueError(f"overhang_angle must lie strictly between 0 and 90 degrees, got {angle}")
+    low, high = ANGLE_RANGE
+    if not low <= angle <= high:
+        raise ValueError(f"overhang_angle must be between {low:g} and {high:g} degrees, got {angle}")
     return angle
 
 
@@ -337,6 +376,7 @@ def direction_masks(
     smoothing: float = 1.5,
     window: int = 6,
     through_holes: bool = False,
+    open_void: tuple | None = None,
 ) -> BuildMasks:
     """Voxel masks of overhangs, supports, removable space and trapped powder.
 
@@ -394,13 +434,24 @@ def direction_masks(
     from filters.printability import enforced_overhang_angle, supported_mask
 
     solid = solid_voxels(design)
-    # judge slopes by the angle the voxel rule enforces, as the optimiser's filter does
-    angle = enforced_overhang_angle(_check_angle(overhang_angle))
+    _check_angle(overhang_angle)
     if float(element_size) <= 0:
         raise ValueError(f"element_size must be positive, got {element_size}")
     if float(tool_access) < 0:
         raise ValueError(f"tool_access must be >= 0, got {tool_access}")
-    parse_direction(direction, solid.ndim)
+    name = axis_name(direction, solid.ndim)
+    if name is None:
+        from topopt.tilted import tilted_masks
+
+        width = max(1, math.ceil(float(tool_access) / float(element_size) - 1e-9))
+        if open_void is None:
+            open_void = _open_void_masks(solid, width, through_holes)
+        accessible, trapped, count = open_void
+        return BuildMasks(**tilted_masks(solid, direction, overhang_angle, accessible, trapped,
+                                         count))
+    direction = name
+    # judge slopes by the angle the voxel rule enforces, as the optimiser's filter does
+    angle = enforced_overhang_angle(overhang_angle, direction, solid.ndim)
 
     # the part is placed on the plate: empty layers under its lowest point are dropped
     full_b = to_build_frame(solid, direction)
@@ -504,6 +555,8 @@ def report_from_masks(
 
     Without ``mass_density`` the mass and the material cost are NaN (not estimated).
     """
+    from filters.direction import direction_label, unit_vector
+
     values = _process_values(process)
     h = float(element_size)
     ndim = masks.solid.ndim
@@ -511,21 +564,29 @@ def report_from_masks(
     voxel = h * h * depth
     face = h * depth
     fill = values["support_fill"]
-
-    solid_b = to_build_frame(masks.solid, direction)
-    occupied = np.flatnonzero(solid_b.reshape(solid_b.shape[0], -1).any(axis=1))
-    height = (occupied[-1] - occupied[0] + 1) * h if occupied.size else 0.0
-    layers = math.ceil(height / values["layer_thickness"] - 1e-9) if height > 0 else 0
+    vector = tuple(float(v) for v in unit_vector(direction, ndim))
+    label = direction_label(direction, ndim)
 
     part_volume = float(masks.solid.sum()) * voxel
-    support_volume = float(masks.support.sum()) * voxel * fill
-    on_plate = float(masks.support_on_plate.sum()) * voxel * fill
-    unremovable = float((masks.support & ~masks.accessible).sum()) * voxel * fill
+    if masks.support_length is None:
+        solid_b = to_build_frame(masks.solid, label)
+        occupied = np.flatnonzero(solid_b.reshape(solid_b.shape[0], -1).any(axis=1))
+        height = (occupied[-1] - occupied[0] + 1) * h if occupied.size else 0.0
+        support_volume = float(masks.support.sum()) * voxel * fill
+        on_plate = float(masks.support_on_plate.sum()) * voxel * fill
+        unremovable = float((masks.support & ~masks.accessible).sum()) * voxel * fill
+    else:
+        height = float(masks.height) * h
+        support_volume = masks.support_length * voxel * fill
+        on_plate = masks.on_plate_length * voxel * fill
+        unremovable = masks.unremovable_length * voxel * fill
+    layers = math.ceil(height / values["layer_thickness"] - 1e-9) if height > 0 else 0
     down_area = float(masks.down_facing.sum()) * face
     overhang_area = float(masks.needs_support.sum()) * face
     rho = float("nan") if mass_density is None else float(mass_density)
     return BuildReport(
-        direction=direction,
+        direction=label,
+        vector=vector,
         overhang_angle=float(overhang_angle),
         build_height=float(height),
         layers=int(layers),
@@ -618,10 +679,18 @@ def analyze_design(
     if mass_density is not None and not (math.isfinite(mass_density) and mass_density > 0):
         raise ValueError(f"mass_density must be a positive number, got {mass_density}")
     values = _process_values(process)
+    from filters.direction import direction_label
+
     chosen = list(directions) if directions else list(all_directions(solid.ndim))
-    if len(set(chosen)) != len(chosen):
-        raise ValueError(f"directions repeat an entry: {chosen}")
+    labels = [direction_label(d, solid.ndim) for d in chosen]
+    if len(set(labels)) != len(labels):
+        raise ValueError(f"directions repeat an entry: {labels}")
     reports, kept = [], []
+    open_void = None
+    if any(axis_name(d, solid.ndim) is None for d in chosen):
+        # the same for every tilted direction (the domain is open on every side)
+        width = max(1, math.ceil(values["tool_access"] / float(element_size) - 1e-9))
+        open_void = _open_void_masks(solid, width, through_holes)
     for direction in chosen:
         masks = direction_masks(
             solid,
@@ -630,6 +699,7 @@ def analyze_design(
             element_size=element_size,
             tool_access=values["tool_access"],
             through_holes=through_holes,
+            open_void=open_void,
         )
         reports.append(
             report_from_masks(

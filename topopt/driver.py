@@ -39,6 +39,9 @@ class Result:
     elapsed_s: float
     solver: str = ""
     grey_level: float = float("nan")
+    #: keep-in elements the domain cannot hold up (no printable path below them even
+    #: with every element that may be solid made solid); held out of the constraint
+    unholdable_keep_in: int = 0
 
 
 def build_filter_chain(problem, *, eta: float | None = None) -> FilterChain:
@@ -61,16 +64,76 @@ def build_filter_chain(problem, *, eta: float | None = None) -> FilterChain:
                                           eta=default_eta if eta is None else eta,
                                           preserve_volume=settings.preserve_volume))
     links.append(FixedValues(problem.passive_solid, problem.passive_void))
-    # -- printability link (appended here when build.direction != "none") --
-    if problem.build.direction != "none":
+    # -- printability link (appended here when a build direction is set) --
+    if problem.build.active:
         from filters.printability import printability_filter
 
-        # keep-in regions are required geometry: they print (with supports if need be)
-        # and hold up what is built on them, rather than fading when nothing is below
+        # keep-in regions are required geometry and stay solid for the analysis; with
+        # keep_in = "held" they print only when the design holds them up (a constraint
+        # of the optimiser), with "supported" whatever lies below (supports added)
+        mode = "hold" if problem.build.keep_in == "held" else "print"
         links.append(printability_filter(grid.shape, direction=problem.build.direction,
                                          overhang_angle=problem.build.overhang_angle,
-                                         keep=problem.passive_solid))
+                                         keep=problem.passive_solid, keep_mode=mode,
+                                         plate_offset=problem.build.plate_offset
+                                         / grid.element_size))
     return FilterChain(links)
+
+
+#: Mean unprinted share of the keep-in elements allowed by the keep-in constraint.
+KEEP_IN_TOLERANCE = 0.01
+
+
+class KeepInConstraint:
+    """Keep-in regions held up by the design: ``mean(1 - xi_k) / tol - 1 <= 0``.
+
+    ``xi_k`` is the printed density the printability filter gives the keep-in elements
+    that the domain can hold at all (see :func:`unholdable_keep_in`); the constraint is
+    handled by MMA beside the volume constraint. The published layer filter with the
+    passive solid elements in its input (Langelaar, Additive Manufacturing 12:60-70,
+    2016) makes such an element count as printed only when something holds it; here the
+    analysis keeps it solid and the optimiser is asked to make it printed.
+    """
+
+    def __init__(self, chain: FilterChain, weights_mask: np.ndarray):
+        self.chain = chain
+        self.index = next(i for i, link in enumerate(chain.links) if hasattr(link, "keep_printed"))
+        self.link = chain.links[self.index]
+        keep = self.link.keep.ravel()
+        self.weights = weights_mask.ravel()[keep].astype(float)
+        self.count = float(self.weights.sum())
+
+    def value(self) -> float:
+        """Constraint value at the chain's last forward pass (also the mean shortfall)."""
+        xi = self.link.keep_printed()
+        return float(self.weights @ (1.0 - xi)) / self.count / KEEP_IN_TOLERANCE - 1.0
+
+    def shortfall(self) -> float:
+        """Mean unprinted share of the constrained keep-in elements."""
+        return (self.value() + 1.0) * KEEP_IN_TOLERANCE
+
+    def gradient(self) -> np.ndarray:
+        """Gradient of :meth:`value` with respect to the design variables."""
+        d = self.link.keep_printed_backward(-self.weights / self.count / KEEP_IN_TOLERANCE)
+        for link in reversed(self.chain.links[: self.index]):
+            d = link.backward(d)
+        return d
+
+
+def unholdable_keep_in(problem) -> np.ndarray:
+    """Keep-in elements that cannot print even with every non-void element solid.
+
+    Exact logical sweep of the printability rule on the fullest design the problem
+    allows; such elements sit over kept-empty space (or the domain's edge) with no room
+    for a slope below them, so no design can hold them up.
+    """
+    from filters.printability import printable_part
+
+    b = problem.build
+    fullest = ~problem.passive_void
+    printed = printable_part(fullest, direction=b.direction, overhang_angle=b.overhang_angle,
+                             plate_offset=b.plate_offset / problem.grid.element_size)
+    return problem.passive_solid & ~printed
 
 
 def build_filter_chains(problem) -> list[FilterChain]:
@@ -141,10 +204,18 @@ def optimize(
     active = ~(problem.passive_solid | problem.passive_void)
     n = active.size
     unit_volume_gradient = np.full(problem.grid.shape, 1.0 / n)
+    keep_in = None
+    unholdable = np.zeros(problem.grid.shape, dtype=bool)
+    if problem.build.active and problem.build.keep_in == "held" and problem.passive_solid.any():
+        unholdable = unholdable_keep_in(problem)
+        holdable = problem.passive_solid & ~unholdable
+        if holdable.any():
+            keep_in = KeepInConstraint(chain, holdable)
     updater = None
     if settings.method == "mma":
         updater = MMAComplianceUpdate(active, volume_fraction=settings.volume_fraction,
-                                      n_designs=len(chains), move=move_limit)
+                                      n_designs=len(chains), move=move_limit,
+                                      extra_constraints=int(keep_in is not None))
 
     x = initial_design(problem)
     history: list[dict] = []
@@ -195,7 +266,9 @@ def optimize(
                     move=move_limit, active=active,
                 )
             else:
-                x_new = updater(x, compliances=compliances, gradients=gradients, volume=vol, dv=dv)
+                extra = [] if keep_in is None else [(keep_in.value(), keep_in.gradient())]
+                x_new = updater(x, compliances=compliances, gradients=gradients, volume=vol,
+                                dv=dv, extra=extra)
             change = float(np.max(np.abs(x_new - x)))
             x = x_new
             iteration += 1
@@ -214,6 +287,8 @@ def optimize(
                 row["beta"] = schedule.beta
             if eta_finder is not None:
                 row["eta"] = eta_finder.eta
+            if keep_in is not None:
+                row["keep_in_unprinted"] = keep_in.shortfall()
             history.append(row)
             if bar is not None:
                 bar.update(1)
@@ -249,6 +324,7 @@ def optimize(
         elapsed_s=time.perf_counter() - t0,
         solver=model.solver.name,
         grey_level=grey_level(physical),
+        unholdable_keep_in=int(unholdable.sum()),
     )
 
 

@@ -428,6 +428,9 @@ class MMAComplianceUpdate:
         Number of compliances whose maximum is minimised.
     move : float
         Move limit per iteration (share of the [0, 1] box).
+    extra_constraints : int
+        Further constraints ``g(x) <= 0`` given at every call (``extra=[(g, dg), ...]``,
+        gradients in grid shape), such as the printability of keep-in regions.
 
     Examples
     --------
@@ -439,7 +442,8 @@ class MMAComplianceUpdate:
     """
 
     def __init__(
-        self, active: np.ndarray, *, volume_fraction: float, n_designs: int = 1, move: float = 0.2
+        self, active: np.ndarray, *, volume_fraction: float, n_designs: int = 1, move: float = 0.2,
+        extra_constraints: int = 0,
     ):
         self.active = np.asarray(active, dtype=bool)
         self.volume_fraction = float(volume_fraction)
@@ -452,8 +456,9 @@ class MMAComplianceUpdate:
         upper = np.ones(n + self.bound)
         if self.bound:
             lower[-1], upper[-1] = -self._Z_MAX, self._Z_MAX
-        self.mma = MMA(n + self.bound, self.n_designs * self.bound + 1, lower=lower,
-                       upper=upper, move=move)
+        self.n_extra = int(extra_constraints)
+        self.mma = MMA(n + self.bound, self.n_designs * self.bound + 1 + self.n_extra,
+                       lower=lower, upper=upper, move=move)
         self.scale: float | None = None
         self.z: float | None = None
 
@@ -469,8 +474,14 @@ class MMAComplianceUpdate:
         gradients,
         volume: float,
         dv: np.ndarray,
+        extra=(),
     ) -> np.ndarray:
         """Return the updated design (grid shape); gradients are with respect to ``x``."""
+        extra = list(extra)
+        if len(extra) != self.n_extra:
+            raise ValueError(f"expected {self.n_extra} extra constraints, got {len(extra)}")
+        g_extra = np.array([float(g) for g, _ in extra])
+        dg_extra = [np.asarray(dg, dtype=float)[self.active] for _, dg in extra]
         c = np.asarray(compliances, dtype=float).reshape(-1)
         if c.size != self.n_designs:
             raise ValueError(f"expected {self.n_designs} compliances, got {c.size}")
@@ -492,14 +503,17 @@ class MMAComplianceUpdate:
         g_vol = volume / self.volume_fraction - 1.0
         dg_vol = np.asarray(dv, dtype=float)[self.active] / self.volume_fraction
         if not self.bound:
-            new = self.mma.update(xa, c[0], dcs[0], np.array([g_vol]), dg_vol[None, :])
+            g = np.append(g_vol, g_extra)
+            rows = np.vstack([dg_vol] + dg_extra)
+            new = self.mma.update(xa, c[0], dcs[0], g, rows)
         else:
             self.z = float(np.clip(c.max(), -self._Z_MAX, self._Z_MAX))
             var = np.append(xa, self.z)
             df0 = np.zeros(var.size)
             df0[-1] = 1.0
             rows = [np.append(d, -1.0) for d in dcs] + [np.append(dg_vol, 0.0)]
-            g = np.append(c - self.z, g_vol)
+            rows += [np.append(d, 0.0) for d in dg_extra]
+            g = np.concatenate([c - self.z, [g_vol], g_extra])
             new = self.mma.update(var, self.z, df0, g, np.vstack(rows))
             self.z = float(new[-1])
             new = new[:-1]

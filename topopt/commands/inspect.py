@@ -37,8 +37,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="problem file giving element size, thickness, build and process "
                              "values (default: the results folder's problem.toml)")
     parser.add_argument("--directions", default=None, metavar="LIST",
-                        help="candidate build directions, comma-separated, e.g. "
-                             "--directions -z,+z,+x (default: all axis directions)")
+                        help="candidate build directions, comma-separated: axis names or "
+                             "vectors of numbers separated by spaces, e.g. "
+                             "--directions '-z,+z,0 1 1' (default: all axis directions)")
+    parser.add_argument("--search", type=int, default=None, metavar="N",
+                        help="search orientations: N directions spread evenly over the sphere "
+                             "(the circle in 2D) plus the axis directions, analysed and ranked")
     parser.add_argument("--element-size", type=float, default=None, metavar="H",
                         help="voxel size for an array without a problem file, or for "
                              "voxelising an STL")
@@ -96,28 +100,65 @@ def parse_weights(text: str) -> dict[str, float]:
     return weights
 
 
-def parse_directions(text: str | None, ndim: int) -> list[str] | None:
-    """Split ``"+x,-x,+z"`` into directions and check them for the design's dimension.
+def parse_directions(text: str | None, ndim: int) -> list | None:
+    """Split ``"+x,-x,0 1 1"`` into axis names and vectors, checked for the dimension.
 
     Examples
     --------
     >>> parse_directions("+y, -y", 2)
     ['+y', '-y']
+    >>> parse_directions("+z, 0 1 1", 3)
+    ['+z', [0.0, 1.0, 1.0]]
     """
-    from topopt.build import all_directions
+    from filters.direction import direction_label, unit_vector
 
     if text is None:
         return None
-    out = [d.strip() for d in str(text).split(",") if d.strip()]
+    out: list = []
+    for entry in (e.strip() for e in str(text).split(",")):
+        if not entry:
+            continue
+        parts = entry.split()
+        if len(parts) == 1 and parts[0][:1] in "+-" and parts[0][1:] in ("x", "y", "z"):
+            value = parts[0]
+        else:
+            try:
+                value = [float(v) for v in parts]
+            except ValueError:
+                raise ValueError(f"--directions: {entry!r} is neither an axis name such as +z "
+                                 "nor a vector of numbers such as '0 1 1'") from None
+        try:
+            unit_vector(value, ndim)
+        except ValueError as exc:
+            raise ValueError(f"--directions: {entry!r}: {exc}") from None
+        out.append(value)
     if not out:
         raise ValueError("--directions: give at least one direction, e.g. --directions +z,-z")
-    allowed = all_directions(ndim)
-    for d in out:
-        if d not in allowed:
-            raise ValueError(f"--directions: {d!r} is not a direction of a {ndim}D design; "
-                             f"expected some of {' '.join(allowed)}")
-    if len(set(out)) != len(out):
-        raise ValueError(f"--directions: a direction is repeated in {' '.join(out)}")
+    labels = [direction_label(d, ndim) for d in out]
+    if len(set(labels)) != len(labels):
+        raise ValueError(f"--directions: a direction is repeated in {' '.join(labels)}")
+    return out
+
+
+def search_directions(count: int, ndim: int) -> list:
+    """The axis directions and ``count`` unit vectors spread over the sphere (circle).
+
+    Examples
+    --------
+    >>> len(search_directions(10, 3))
+    16
+    """
+    from filters.direction import axis_directions, direction_label, spread_directions
+
+    if not 1 <= count <= 5000:
+        raise ValueError(f"--search: expected 1 to 5000 directions, got {count}")
+    out: list = list(axis_directions(ndim))
+    seen = set(out)
+    for v in spread_directions(count, ndim):
+        label = direction_label(v.tolist(), ndim)
+        if label not in seen:
+            seen.add(label)
+            out.append([float(c) for c in v])
     return out
 
 
@@ -239,6 +280,11 @@ def run(args: argparse.Namespace) -> int:
     weights = parse_weights(args.weights)
     design = load_design(args)
     directions = parse_directions(args.directions, design.density.ndim)
+    if args.search is not None:
+        if directions is not None:
+            raise ValueError("--search and --directions exclude each other")
+        directions = search_directions(int(args.search), design.density.ndim)
+        print(f"searching {len(directions)} build directions ...", flush=True)
     reports, best, masks = analyze_design(
         design.density,
         element_size=design.element_size,
@@ -257,7 +303,9 @@ def run(args: argparse.Namespace) -> int:
         "best": best,
         "process": {**design.process, "mass_density": design.mass_density,
                     "overhang_angle": design.overhang_angle,
-                    "enforced_overhang_angle": enforced_overhang_angle(design.overhang_angle)},
+                    "enforced_overhang_angle": min(
+                        enforced_overhang_angle(design.overhang_angle, r.vector,
+                                                design.density.ndim) for r in reports)},
         "through_holes": bool(args.through_holes) and design.density.ndim == 2,
         "weights": weights,
         "design": {"source": design.source, "shape": list(design.density.shape),
@@ -273,16 +321,23 @@ def run(args: argparse.Namespace) -> int:
     write_inspect_png(out / "inspect.png", reports, masks, best=best,
                       element_size=design.element_size)
     write_json(out / "inspect.json", report)  # last: its presence marks a finished report
-    _print_table(reports, best, design.mass_density is None)
+    _print_table(reports if len(reports) <= 12 else _shortlist(reports, best), best,
+                 design.mass_density is None)
     print(f"report: {out}/inspect.json, table: {out}/inspect.csv, picture: {out}/inspect.png")
     return 0
 
 
+def _shortlist(reports, best: str, count: int = 10) -> list:
+    """The best-scoring reports (for a long orientation search), best first."""
+    ordered = sorted(reports, key=lambda r: r.score)
+    return ordered[:count]
+
+
 def _print_table(reports, best: str, no_mass: bool) -> None:
-    print(f"{'direction':>9} {'height':>8} {'layers':>6} {'overhang':>9} {'support':>9} "
+    print(f"{'direction':>24} {'height':>8} {'layers':>6} {'overhang':>9} {'support':>9} "
           f"{'unremov.':>9} {'trapped':>9} {'time_h':>7} {'cost':>9} {'score':>6}")
     for r in reports:
-        print(f"{r.direction:>9} {r.build_height:8.4g} {r.layers:6d} {r.overhang_area:9.4g} "
+        print(f"{r.direction:>24} {r.build_height:8.4g} {r.layers:6d} {r.overhang_area:9.4g} "
               f"{r.support_volume:9.4g} {r.unremovable_support_volume:9.4g} "
               f"{r.trapped_powder_volume:9.4g} {r.build_time_h:7.3g} {r.material_cost:9.4g} "
               f"{r.score:6.3f}")
@@ -342,8 +397,87 @@ def _panel_image(masks, direction: str) -> np.ndarray:
     return image
 
 
+def _tilted_panel_image(masks) -> np.ndarray:
+    """RGB image of a tilted build in the design's own frame (3D: seen along z)."""
+
+    def flat(a: np.ndarray) -> np.ndarray:
+        b = a.any(axis=-1) if a.ndim == 3 else a
+        return b.T  # rows = y, columns = x
+
+    solid = flat(masks.solid)
+    image = np.ones(solid.shape + (3,))
+    for name, mask in (("trapped", flat(masks.trapped)), ("support", flat(masks.support)),
+                       ("unremovable", flat(masks.support & ~masks.accessible)),
+                       ("solid", solid), ("overhang", flat(masks.needs_support))):
+        image[mask] = _COLOURS[name]
+    return image
+
+
+def _draw_panel(ax, r, m, element_size: float, best: str) -> None:
+    from topopt.build import axis_name, parse_direction
+
+    ndim = m.solid.ndim
+    name = axis_name(list(r.vector), ndim)
+    mark = "  [best]" if r.direction == best else ""
+    if name is not None:
+        image = _panel_image(m, name)
+        axis, _ = parse_direction(name, ndim)
+        across = [a for a in range(ndim) if a != axis][0]
+        ax.imshow(image, origin="lower", interpolation="nearest",
+                  extent=(0, image.shape[1] * element_size, 0, image.shape[0] * element_size))
+        ax.axhline(0, color="k", lw=3)
+        ax.set_xlabel("xyz"[across] + (" (seen from the side)" if ndim == 3 else ""), fontsize=7)
+        ax.set_ylabel(f"build {name} (plate at the bottom)", fontsize=7)
+    else:
+        image = _tilted_panel_image(m)
+        ax.imshow(image, origin="lower", interpolation="nearest",
+                  extent=(0, image.shape[1] * element_size, 0, image.shape[0] * element_size))
+        cx, cy = image.shape[1] * element_size / 2, image.shape[0] * element_size / 2
+        length = 0.3 * min(cx, cy)
+        ax.annotate("", xy=(cx + length * r.vector[0], cy + length * r.vector[1]), xytext=(cx, cy),
+                    arrowprops={"arrowstyle": "->", "color": "k", "lw": 2})
+        ax.set_xlabel("x" + (" (seen along z)" if ndim == 3 else ""), fontsize=7)
+        ax.set_ylabel("y; arrow: build direction", fontsize=7)
+    ax.tick_params(labelsize=6)
+    ax.set_title(f"{r.direction}{mark}\nsupport {r.support_volume:.3g}, {r.build_time_h:.3g} h",
+                 fontsize=8)
+
+
+def _draw_map(ax, reports, best: str) -> None:
+    """Every searched direction at a glance: support volume (colour), build time (size)."""
+    ndim = len(reports[0].vector)
+    v = np.array([r.vector for r in reports])
+    support = np.array([r.support_volume for r in reports])
+    time_h = np.array([r.build_time_h for r in reports])
+    size = 15 + 60 * (time_h - time_h.min()) / max(np.ptp(time_h), 1e-12)
+    if ndim == 3:
+        azimuth = np.degrees(np.arctan2(v[:, 1], v[:, 0]))
+        elevation = np.degrees(np.arcsin(np.clip(v[:, 2], -1, 1)))
+        sc = ax.scatter(azimuth, elevation, c=support, s=size, cmap="viridis_r")
+        ax.set_xlabel("azimuth of the build direction (deg, from +x towards +y)", fontsize=7)
+        ax.set_ylabel("elevation (deg, +90 = +z)", fontsize=7)
+        ax.set_xlim(-180, 180)
+        ax.set_ylim(-90, 90)
+        pick = [i for i, r in enumerate(reports) if r.direction == best]
+        ax.scatter(azimuth[pick], elevation[pick], marker="*", s=250, facecolor="none",
+                   edgecolor="red", linewidths=1.5)
+    else:
+        angle = np.degrees(np.arctan2(v[:, 1], v[:, 0]))
+        sc = ax.scatter(angle, support, c=support, s=size, cmap="viridis_r")
+        ax.set_xlabel("build direction angle (deg, from +x towards +y)", fontsize=7)
+        ax.set_ylabel("support volume", fontsize=7)
+        pick = [i for i, r in enumerate(reports) if r.direction == best]
+        ax.scatter(angle[pick], support[pick], marker="*", s=250, facecolor="none",
+                   edgecolor="red", linewidths=1.5)
+    ax.figure.colorbar(sc, ax=ax, label="support volume", shrink=0.8)
+    ax.set_title(f"{len(reports)} build directions: colour = support volume, "
+                 "size = build time, star = best", fontsize=8)
+    ax.tick_params(labelsize=6)
+
+
 def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -> None:
-    """One panel per direction (build direction up, plate at the bottom) and bar charts."""
+    """Panels per direction (build direction up, plate at the bottom) and bar charts; for
+    an orientation search, a map of every direction beside the best ones' panels."""
     import matplotlib
     import numpy as np
 
@@ -351,46 +485,41 @@ def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -
     import matplotlib.pyplot as plt
     from matplotlib.patches import Patch
 
-    from topopt.build import parse_direction
     from topopt.export import atomic_write
 
-    n = len(reports)
+    many = len(reports) > 9
+    if many:
+        order = sorted(range(len(reports)), key=lambda i: reports[i].score)[:3]
+        shown = [(reports[i], masks[i]) for i in order]
+    else:
+        shown = list(zip(reports, masks, strict=True))
+    n = len(shown)
     cols = min(n, 3)
     rows = math.ceil(n / cols)
-    fig = plt.figure(figsize=(3.4 * cols, 3.0 * rows + 2.8), dpi=110)
-    grid = fig.add_gridspec(rows + 1, cols, height_ratios=[3.0] * rows + [2.4])
-    ndim = masks[0].solid.ndim
-    for k, (r, m) in enumerate(zip(reports, masks, strict=True)):
-        ax = fig.add_subplot(grid[k // cols, k % cols])
-        image = _panel_image(m, r.direction)
-        axis, _ = parse_direction(r.direction, ndim)
-        across = [a for a in range(ndim) if a != axis][0]
-        ax.imshow(image, origin="lower", interpolation="nearest",
-                  extent=(0, image.shape[1] * element_size, 0, image.shape[0] * element_size))
-        ax.axhline(0, color="k", lw=3)
-        ax.set_xlabel("xyz"[across] + (" (seen from the side)" if ndim == 3 else ""), fontsize=7)
-        ax.set_ylabel(f"build {r.direction} (plate at the bottom)", fontsize=7)
-        ax.tick_params(labelsize=6)
-        mark = "  [best]" if r.direction == best else ""
-        ax.set_title(f"{r.direction}{mark}: support {r.support_volume:.3g}, "
-                     f"{r.build_time_h:.3g} h", fontsize=8)
+    fig = plt.figure(figsize=(3.6 * cols + (1.5 if many else 0), 3.1 * rows + 3.0), dpi=110)
+    grid = fig.add_gridspec(rows + 1, cols, height_ratios=[3.0] * rows + [2.6])
+    for k, (r, m) in enumerate(shown):
+        _draw_panel(fig.add_subplot(grid[k // cols, k % cols]), r, m, element_size, best)
     legend = [Patch(color=_COLOURS[k], label=label) for k, label in (
         ("solid", "part"), ("overhang", "surface needing support"), ("support", "support"),
         ("unremovable", "support out of tool reach"), ("trapped", "trapped powder"))]
     fig.legend(handles=legend, loc="upper center", ncol=5, fontsize=7, frameon=False)
-    names = [r.direction for r in reports]
-    bars = (("support volume", [r.support_volume for r in reports]),
-            ("build time (h)", [r.build_time_h for r in reports]),
-            ("material cost", [r.material_cost for r in reports]))
-    sub = grid[rows, :].subgridspec(1, 3, wspace=0.35)
-    for k, (label, values) in enumerate(bars):
-        ax = fig.add_subplot(sub[0, k])
-        values = [0.0 if not np.isfinite(v) else v for v in values]
-        colours = ["tab:green" if d == best else "tab:gray" for d in names]
-        ax.bar(names, values, color=colours)
-        ax.set_title(label + (" (no mass density)" if k == 2 and not any(values) else ""),
-                     fontsize=8)
-        ax.tick_params(labelsize=7)
+    if many:
+        _draw_map(fig.add_subplot(grid[rows, :]), reports, best)
+    else:
+        names = [r.direction for r in reports]
+        bars = (("support volume", [r.support_volume for r in reports]),
+                ("build time (h)", [r.build_time_h for r in reports]),
+                ("material cost", [r.material_cost for r in reports]))
+        sub = grid[rows, :].subgridspec(1, 3, wspace=0.35)
+        for k, (label, values) in enumerate(bars):
+            ax = fig.add_subplot(sub[0, k])
+            values = [0.0 if not np.isfinite(v) else v for v in values]
+            colours = ["tab:green" if d == best else "tab:gray" for d in names]
+            ax.bar(names, values, color=colours)
+            ax.set_title(label + (" (no mass density)" if k == 2 and not any(values) else ""),
+                         fontsize=8)
+            ax.tick_params(labelsize=6, labelrotation=30)
     fig.text(0.01, 0.005, CAUTION, fontsize=6, color="0.35")
     fig.tight_layout(rect=(0, 0.02, 1, 0.96))
     atomic_write(path, lambda h: fig.savefig(h, format="png"))
