@@ -35,8 +35,8 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
                          "topopt.solvers")),
     ("model", ("topopt.problem", "topopt.objective", "topopt.optimizers", "topopt.robust")),
     ("optimisation loop", ("topopt.driver",)),
-    ("analysis and output", ("topopt.lengthscale", "topopt.build", "topopt.surface",
-                             "topopt.export")),
+    ("analysis and output", ("topopt.lengthscale", "topopt.tilted", "topopt.build",
+                             "topopt.surface", "topopt.export")),
     ("studies", ("topopt.study", "topopt.compare")),
     ("command line", ("topopt.commands", "topopt.commands.compare", "topopt.commands.export",
                       "topopt.commands.inspect", "topopt.commands.optimize",
@@ -201,6 +201,34 @@ def test_the_package_facade_imports_only_the_version_when_imported():
                  for node in tree.body if isinstance(node, (ast.Import, ast.ImportFrom))
                  for alias in node.names}
     assert top_level == {"topopt.version"}, top_level
+
+
+def functions_using_numpy_without_importing_it(source: str) -> list[str]:
+    """Top-level functions whose body uses ``np`` but that import numpy nowhere inside."""
+    missing = []
+    for node in ast.parse(source).body:
+        if not isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)):
+            continue
+        uses = any(isinstance(n, ast.Name) and n.id == "np"
+                   for stmt in node.body for n in ast.walk(stmt))
+        imports = any(isinstance(n, ast.Import) and any(a.name == "numpy" for a in n.names)
+                      for n in ast.walk(node))
+        if uses and not imports:
+            missing.append(node.name)
+    return missing
+
+
+def test_numpy_check_can_fail():
+    source = "def a():\n    return np.zeros(2)\ndef b():\n    import numpy as np\n    return np.ones(1)\n"
+    assert functions_using_numpy_without_importing_it(source) == ["a"]
+
+
+@pytest.mark.parametrize("path", sorted((ROOT / "topopt" / "commands").glob("*.py")),
+                         ids=lambda p: p.name)
+def test_command_modules_import_numpy_where_they_use_it(path):
+    # Command modules keep numpy out of their top level (`buttress --help` must not load
+    # it); a function that uses np must import it itself, or it fails at run time.
+    assert functions_using_numpy_without_importing_it(path.read_text(encoding="utf-8")) == []
 
 
 def _modules_loaded_by(code: str) -> set[str]:

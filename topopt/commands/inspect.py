@@ -399,6 +399,7 @@ def _panel_image(masks, direction: str) -> np.ndarray:
 
 def _tilted_panel_image(masks) -> np.ndarray:
     """RGB image of a tilted build in the design's own frame (3D: seen along z)."""
+    import numpy as np
 
     def flat(a: np.ndarray) -> np.ndarray:
         b = a.any(axis=-1) if a.ndim == 3 else a
@@ -445,6 +446,8 @@ def _draw_panel(ax, r, m, element_size: float, best: str) -> None:
 
 def _draw_map(ax, reports, best: str) -> None:
     """Every searched direction at a glance: support volume (colour), build time (size)."""
+    import numpy as np
+
     ndim = len(reports[0].vector)
     v = np.array([r.vector for r in reports])
     support = np.array([r.support_volume for r in reports])
