@@ -89,14 +89,17 @@ def _run_briefly(problem, iterations: int):
     assert np.isfinite(result.compliance) and result.compliance > 0
     assert result.density.shape == problem.grid.shape
     assert np.all((result.density >= 0) & (result.density <= 1))
-    if problem.build.direction == "none":
-        # Passive regions hold their state (with a build direction the printability
+    if not problem.build.active or problem.build.keep_in == "held":
+        # Passive regions hold their state (with keep_in = "supported" the printability
         # filter comes after them in the chain and may lower unprintable solid).
         assert np.all(result.density[problem.passive_solid] == 1.0)
+    if not problem.build.active:
         assert np.all(result.density[problem.passive_void] == 0.0)
     # OC keeps the volume at the target from the first update on (linear chain); a
-    # nonlinear chain (projection, printability) may drift a little in three steps.
-    assert abs(result.volume_fraction - problem.optimize.volume_fraction) < 0.05
+    # nonlinear chain (projection, printability) may drift a little in three steps, and
+    # MMA (the default with a build direction) reaches the target over a few more.
+    slack = 0.1 if problem.optimize.method == "mma" and problem.build.active else 0.05
+    assert abs(result.volume_fraction - problem.optimize.volume_fraction) < slack
     return result
 
 
