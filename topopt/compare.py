@@ -1,11 +1,14 @@
 """Optimise one problem free and self-supporting for several build directions, side by side.
 
-:func:`compare` runs the problem with the printability filter off (``"none"``) and on
-for each requested build direction, each into its own results folder, then writes
-``comparison.csv`` (one row per run) and ``comparison.png`` (the designs with the build
-plate drawn on each, and a bar chart of the compliance increase against the free
-design). Runs go to a pool of processes limited to the core count, each with its BLAS
-held to one thread, so parallel runs do not fight over the cores.
+:func:`compare` is a study that varies ``build.direction``: the problem with the
+printability filter off (``"none"``) and on for each requested build direction. The
+cases run through the study runner (:func:`topopt.study.run_cases`), each into its own
+results folder (``none``, ``plus-x``, ``minus-y`` ...), and are read back with the study's
+results reader; then :func:`compare` writes ``comparison.csv`` (one row per run) and
+``comparison.png`` (the designs with the build plate drawn on each, and a bar chart of
+the compliance increase against the free design). Runs go to a pool of processes
+limited to the core count, each with its BLAS held to one thread, so parallel runs do
+not fight over the cores.
 """
 
 from __future__ import annotations
@@ -86,25 +89,6 @@ def _check_workers(workers, n_runs: int) -> int:
     return max(1, min(workers, cores, n_runs))
 
 
-def _run_one(source: dict, path: str, folder: str) -> dict:
-    """Optimise one variant and write its results folder (runs in a worker process)."""
-    from topopt.driver import optimize
-    from topopt.export import summary_dict, write_results
-    from topopt.problem import problem_from_dict
-
-    problem = problem_from_dict(source, source=path)
-    result = optimize(problem)
-    write_results(result, problem, folder)
-    return summary_dict(result, problem)
-
-
-def _run_one_single_thread(source: dict, path: str, folder: str) -> dict:
-    from topopt.parallel import single_thread
-
-    with single_thread():
-        return _run_one(source, path, folder)
-
-
 def compare(
     problem,
     *,
@@ -155,7 +139,8 @@ def compare(
     True
     """
     from topopt.export import write_csv
-    from topopt.problem import with_settings
+    from topopt.problem import ProblemError
+    from topopt.study import read_density, read_summary, run_cases, study_of
 
     runs = ["none"] + _check_directions(directions, problem.grid.dim)
     n_workers = _check_workers(workers, len(runs))
@@ -165,14 +150,22 @@ def compare(
     taken = [out / "comparison.csv"] + [out / folder_name(d) / "summary.json" for d in runs]
     if not overwrite and any(p.exists() for p in taken):
         raise ValueError(f"{out}: holds results already; use overwrite or another folder")
-    variants = {d: with_settings(problem, {"build.direction": d}) for d in runs}
+    study = study_of(problem, {"build.direction": runs})
+    invalid = next((c for c in study.cases if c.problem is None), None)
+    if invalid is not None:
+        raise ProblemError(f"{problem.path}: {invalid.error}")
     out.mkdir(parents=True, exist_ok=True)
 
     summaries: dict[str, dict] = {}
     t0 = time.perf_counter()
-
-    def done(direction: str, summary: dict) -> None:
-        summaries[direction] = summary
+    for case, folder, error, _ in run_cases(
+        study.cases, lambda c: out / folder_name(c.settings["build.direction"]),
+        workers=n_workers, reuse=False,
+    ):
+        direction = case.settings["build.direction"]
+        if error:
+            raise RuntimeError(f"compare: the run for build direction {direction} failed: {error}")
+        summary = summaries[direction] = read_summary(folder)
         if progress:
             print(
                 f"compare: {direction:>4} done: compliance {summary['compliance']:.6g}, "
@@ -182,32 +175,11 @@ def compare(
                 flush=True,
             )
 
-    jobs = [
-        (d, dict(variants[d].source), variants[d].path, str(out / folder_name(d))) for d in runs
-    ]
-    if n_workers == 1:
-        for d, source, path, folder in jobs:
-            done(d, _run_one(source, path, folder))
-    else:
-        from topopt.parallel import process_map
-
-        for d, summary, error in process_map(
-            _run_one_single_thread, [(job[0], job[1:], {}) for job in jobs], workers=n_workers
-        ):
-            if error is not None:
-                raise error
-            done(d, summary)
-
-    densities = {d: _load_density(out / folder_name(d)) for d in runs}
+    densities = {d: read_density(out / folder_name(d)) for d in runs}
     rows = comparison_rows(runs, summaries, densities, problem)
     write_csv(out / "comparison.csv", rows, COLUMNS)
     plot_comparison(rows, densities, problem, out / "comparison.png")
     return rows
-
-
-def _load_density(folder: Path) -> np.ndarray:
-    with np.load(folder / "result.npz", allow_pickle=False) as data:
-        return np.array(data["density"])
 
 
 def comparison_rows(runs, summaries: dict, densities: dict, problem) -> list[dict]:

@@ -192,6 +192,34 @@ def _study_from_dict(data: Mapping, *, source: str, base_dir: Path) -> Study:
     if not isinstance(vary_raw, Mapping):
         raise fail("vary", f"expected a table, got {describe_value(vary_raw)}")
     vary = _flatten(vary_raw, leaf=lambda v: not isinstance(v, Mapping))
+    return _build_study(base, vary, fixed=fixed, mode=mode, name=name, source=source)
+
+
+def study_of(problem: Problem, vary: Mapping[str, list], *, name: str | None = None,
+             mode: str = "product") -> Study:
+    """A study of an already loaded problem: ``vary`` maps dotted keys to lists of values.
+
+    The same checks as a study file's ``[vary]`` table apply; the cases keep the
+    problem's own source path (used in messages and for defaults such as its name).
+
+    Examples
+    --------
+    >>> from topopt.problem import load_problem
+    >>> st = study_of(load_problem("examples/mbb-beam.toml"), {"build.direction": ["none", "+y"]})
+    >>> [(c.settings["build.direction"], c.problem.build.direction) for c in st.cases]
+    [('none', 'none'), ('+y', '+y')]
+    """
+    if mode not in MODES:
+        raise StudyError(f"{problem.path}: mode: expected one of {', '.join(MODES)}, got {mode!r}")
+    return _build_study(problem, dict(vary), fixed={}, mode=mode,
+                        name=problem.name if name is None else name, source=problem.path)
+
+
+def _build_study(base: Problem, vary: dict, *, fixed: Mapping, mode: str, name: str,
+                 source: str) -> Study:
+    def fail(key: str, message: str) -> StudyError:
+        return StudyError(f"{source}: {key}: {message}")
+
     if not vary:
         raise fail("vary", "empty; expected at least one dotted key with a list of values")
     for key, values in vary.items():
@@ -460,19 +488,67 @@ def run(
     cases_dir = out / "cases"
     cases_dir.mkdir(parents=True, exist_ok=True)
 
+    rows: dict[int, dict] = {}
+    for case, folder, error, ran in run_cases(
+        st.cases, lambda c: cases_dir / c.case_id, workers=workers, scheduler=scheduler,
+        dask=dask, progress=progress,
+    ):
+        rows[case.index] = _failed_row(st, case, error) if error else case_row(st, case, folder)
+        if ran:
+            write_table(_ordered(rows), st.keys, out / "table.csv")
+
+    ordered = _ordered(rows)
+    write_table(ordered, st.keys, out / "table.csv")
+    directions = {c.case_id: (c.problem.build.direction if c.problem else "") for c in st.cases}
+    plot_study(ordered, st.keys, out / "study.png", title=st.name, directions=directions,
+               mode=st.mode)
+    return ordered
+
+
+def run_cases(
+    cases,
+    folder_of,
+    *,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    dask: bool = False,
+    progress: bool = False,
+    reuse: bool = True,
+) -> Iterator[tuple[Case, Path, str, bool]]:
+    """Run cases into their results folders: the one runner of studies and comparisons.
+
+    Parameters
+    ----------
+    cases : sequence of Case
+        The cases (from :func:`load_study` or :func:`study_of`).
+    folder_of : callable
+        ``folder_of(case) -> Path``: the case's results folder.
+    workers, scheduler, dask, progress
+        As for :func:`run`.
+    reuse : bool
+        Count a case whose folder holds a ``summary.json`` as done (resume) instead of
+        running it again.
+
+    Yields
+    ------
+    (case, folder, error, ran)
+        For every case, in the order they are known or finish: ``error`` is ``""`` when
+        the folder holds the case's results, else one line; ``ran`` says whether the case
+        ran now (``False`` for invalid and reused cases). Each case's ``problem.toml`` is
+        written before it runs, so any case can be rerun by hand.
+    """
     from topopt.export import write_results, write_text
     from topopt.problem import to_toml
 
-    rows: dict[int, dict] = {}
+    cases = list(cases)
     pending: list[Case] = []
-    for case in st.cases:
-        folder = cases_dir / case.case_id
+    for case in cases:
+        folder = Path(folder_of(case))
         if case.problem is None:
-            rows[case.index] = _failed_row(st, case, case.error)
-        elif (folder / "summary.json").exists():
-            rows[case.index] = case_row(st, case, folder)
+            yield case, folder, case.error, False
+        elif reuse and (folder / "summary.json").exists():
+            yield case, folder, "", False
         else:
-            # The case's problem file first, so any case can be rerun by hand.
             write_text(folder / "problem.toml", to_toml(case.problem.source))
             pending.append(case)
 
@@ -491,36 +567,28 @@ def run(
     if progress:
         from tqdm import tqdm
 
-        bar = tqdm(total=len(st.cases), initial=len(st.cases) - len(pending), desc="cases",
+        bar = tqdm(total=len(cases), initial=len(cases) - len(pending), desc="cases",
                    unit="case", dynamic_ncols=True)
     try:
         for case, payload in finished:
-            folder = cases_dir / case.case_id
+            folder = Path(folder_of(case))
+            error = ""
             if "result" in payload:
                 try:
                     write_results(payload["result"], case.problem, folder)
-                    rows[case.index] = case_row(st, case, folder)
                 except Exception as exc:  # noqa: BLE001 - e.g. a mesh writer refusing a design
-                    rows[case.index] = _failed_row(
-                        st, case, f"writing the results failed: {_one_line(exc)}")
+                    error = f"writing the results failed: {_one_line(exc)}"
             else:
-                rows[case.index] = _failed_row(st, case, payload["error"])
-            write_table(_ordered(rows), st.keys, out / "table.csv")
+                error = payload["error"]
             if bar is not None:
                 bar.update(1)
+            yield case, folder, error, True
     finally:
         if bar is not None:
             bar.close()
         close = getattr(finished, "close", None)
         if close is not None:
             close()
-
-    ordered = _ordered(rows)
-    write_table(ordered, st.keys, out / "table.csv")
-    directions = {c.case_id: (c.problem.build.direction if c.problem else "") for c in st.cases}
-    plot_study(ordered, st.keys, out / "study.png", title=st.name, directions=directions,
-               mode=st.mode)
-    return ordered
 
 
 def _ordered(rows: dict[int, dict]) -> list[dict]:
@@ -549,13 +617,41 @@ def _failed_row(st: Study, case: Case, error: str) -> dict:
     return row
 
 
+def read_summary(folder: str | Path) -> dict:
+    """The ``summary.json`` of a results folder as a dict.
+
+    Raises
+    ------
+    OSError
+        If the file cannot be read.
+    ValueError
+        If it is not JSON or not a JSON object.
+    """
+    summary = json.loads((Path(folder) / "summary.json").read_text(encoding="utf-8"))
+    if not isinstance(summary, dict):
+        raise ValueError("not a JSON object")
+    return summary
+
+
+def read_density(folder: str | Path):
+    """The physical density of a results folder (``result.npz``, read as data).
+
+    Raises
+    ------
+    OSError, KeyError, ValueError
+        If the file is missing, has no ``density`` or is not a NumPy archive.
+    """
+    import numpy as np
+
+    with np.load(Path(folder) / "result.npz", allow_pickle=False) as data:
+        return np.asarray(data["density"], dtype=float)
+
+
 def case_row(st: Study, case: Case, folder: Path) -> dict:
     """Read the table row of a finished case back from its results folder."""
     row = _blank_row(st, case)
     try:
-        summary = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
-        if not isinstance(summary, dict):
-            raise ValueError("not a JSON object")
+        summary = read_summary(folder)
     except (OSError, ValueError) as exc:
         row.update(status="failed", error=f"unreadable summary.json ({_one_line(exc)})")
         return row
@@ -576,15 +672,11 @@ def print_figures(problem: Problem, folder: Path) -> dict:
     without a build direction is assessed in the direction the analysis ranks best;
     ``assessed_direction`` says which.
     """
-    import numpy as np
-
     from topopt.build import analyze_design
 
     blank = {"support_volume": None, "build_time_h": None, "assessed_direction": None}
-
     try:
-        with np.load(folder / "result.npz", allow_pickle=False) as data:
-            density = np.asarray(data["density"], dtype=float)
+        density = read_density(folder)
     except (OSError, KeyError, ValueError):
         return blank
     grid = problem.grid

@@ -216,6 +216,26 @@ def test_compare_row_matches_an_individual_run(tmp_path):
     assert saved["build"]["direction"] == "+y"
 
 
+def test_bracket_comparison_equals_separate_runs(tmp_path):
+    # compare is a study of build.direction run by the study runner; on the bundled
+    # bracket (coarse grid, 20 iterations) every row must be what a separate optimize()
+    # of that variant gives, as it was before compare became a study (common practice:
+    # a refactoring keeps the numbers; 1e-9 relative)
+    from topopt.study import read_summary
+
+    problem = _coarse_bracket(max_iterations=20)
+    rows = compare(problem, directions=["-x", "+y"], out_dir=tmp_path / "cmp", workers=1)
+    assert [r["direction"] for r in rows] == ["none", "-x", "+y"]
+    for r in rows:
+        alone = optimize(with_settings(problem, {"build.direction": r["direction"]}))
+        assert r["compliance"] == pytest.approx(alone.compliance, rel=1e-9), r["direction"]
+        assert r["iterations"] == alone.iterations
+        np.testing.assert_allclose(_density(tmp_path / "cmp" / r["results"]), alone.density,
+                                   atol=1e-9)
+        # the row is read back from the run's results folder
+        assert r["compliance"] == read_summary(tmp_path / "cmp" / r["results"])["compliance"]
+
+
 def test_pool_and_inline_runs_agree(small_mbb_comparison):
     # the -y run made in a worker process (one BLAS thread) against one made here
     out, rows = small_mbb_comparison
