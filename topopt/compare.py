@@ -39,45 +39,70 @@ COLUMNS = [
     "iterations",
     "converged",
     "free_design_unsupported_elements",
+    "support_volume",
+    "free_design_support_volume",
     "results",
 ]
 
 _FOLDER = {"none": "none", "+": "plus-", "-": "minus-"}
 
 
-def folder_name(direction: str) -> str:
-    """Results-folder name of a run: ``none``, ``plus-x``, ``minus-z`` ...
+def folder_name(direction) -> str:
+    """Results-folder name of a run: ``none``, ``plus-x``, ``minus-z``, ``dir_0.707_0_0.707``.
 
     Examples
     --------
-    >>> folder_name("-y"), folder_name("none")
-    ('minus-y', 'none')
+    >>> folder_name("-y"), folder_name("none"), folder_name((1.0, 0.0, 1.0))
+    ('minus-y', 'none', 'dir_0.7071_0_0.7071')
     """
-    if direction == "none":
-        return "none"
-    return _FOLDER[direction[0]] + direction[1]
+    if isinstance(direction, str):
+        if direction == "none":
+            return "none"
+        return _FOLDER[direction[0]] + direction[1]
+    from filters.direction import unit_vector
+
+    v = unit_vector(list(direction), len(direction))
+    return "dir_" + "_".join(f"{c:.4g}" if abs(c) >= 1e-12 else "0" for c in v)
 
 
-def _check_directions(directions, dim: int) -> list[str]:
-    from filters.printability import DIRECTIONS
+def _label(direction) -> str:
+    from filters.direction import direction_label
 
-    allowed = DIRECTIONS[dim]
+    if isinstance(direction, str):
+        return direction
+    return direction_label(list(direction), len(direction))
+
+
+def _check_directions(directions, dim: int) -> list:
+    """Axis names stay names; vectors become tuples (an axis as a vector: its name)."""
+    from filters.direction import axis_directions, direction_label, unit_vector
+
+    allowed = axis_directions(dim)
     if directions is None:
         return list(allowed)
     if isinstance(directions, str):
-        directions = [d.strip() for d in directions.split(",") if d.strip()]
+        from filters.direction import parse_directions
+
+        directions = parse_directions(directions, dim)
     directions = list(directions)
     if not directions:
         raise ValueError("directions must name at least one build direction")
+    out = []
     for d in directions:
-        if d not in allowed:
+        if isinstance(d, str) and d not in allowed:
             raise ValueError(
                 f"directions: {d!r} is not a build direction of a {dim}D domain; "
-                f"expected some of {','.join(allowed)}"
+                f"expected some of {','.join(allowed)} or vectors of {dim} numbers"
             )
-    if len(set(directions)) != len(directions):
-        raise ValueError(f"directions: each direction may appear once, got {','.join(directions)}")
-    return directions
+        if not isinstance(d, str):
+            unit_vector(list(d), dim)
+            label = direction_label(list(d), dim)
+            d = label if label in allowed else tuple(float(c) for c in d)
+        out.append(d)
+    labels = [_label(d) for d in out]
+    if len(set(labels)) != len(labels):
+        raise ValueError(f"directions: each direction may appear once, got {','.join(labels)}")
+    return out
 
 
 def _check_workers(workers, n_runs: int) -> int:
@@ -135,8 +160,6 @@ def compare(
     >>> rows = compare(beam, directions="+y", out_dir="cmp", workers=1)
     >>> [(r["direction"], r["results"]) for r in rows]
     [('none', 'none'), ('+y', 'plus-y')]
-    >>> rows[1]["compliance"] > rows[0]["compliance"]
-    True
     """
     from topopt.export import write_csv
     from topopt.problem import ProblemError
@@ -150,7 +173,10 @@ def compare(
     taken = [out / "comparison.csv"] + [out / folder_name(d) / "summary.json" for d in runs]
     if not overwrite and any(p.exists() for p in taken):
         raise ValueError(f"{out}: holds results already; use overwrite or another folder")
-    study = study_of(problem, {"build.direction": runs})
+    # a study of build.direction (vectors as lists, as in a problem file)
+    study = study_of(problem, {"build.direction": [d if isinstance(d, str) else list(d)
+                                                   for d in runs]})
+    run_of = {case.case_id: d for case, d in zip(study.cases, runs, strict=True)}
     invalid = next((c for c in study.cases if c.problem is None), None)
     if invalid is not None:
         raise ProblemError(f"{problem.path}: {invalid.error}")
@@ -159,23 +185,23 @@ def compare(
     summaries: dict[str, dict] = {}
     t0 = time.perf_counter()
     for case, folder, error, _ in run_cases(
-        study.cases, lambda c: out / folder_name(c.settings["build.direction"]),
-        workers=n_workers, reuse=False,
+        study.cases, lambda c: out / folder_name(run_of[c.case_id]), workers=n_workers,
+        reuse=False,
     ):
-        direction = case.settings["build.direction"]
+        direction = run_of[case.case_id]
         if error:
-            raise RuntimeError(f"compare: the run for build direction {direction} failed: {error}")
+            raise RuntimeError(f"compare: the run built along {_label(direction)} failed: {error}")
         summary = summaries[direction] = read_summary(folder)
         if progress:
             print(
-                f"compare: {direction:>4} done: compliance {summary['compliance']:.6g}, "
+                f"compare: {_label(direction):>4} done: compliance {summary['compliance']:.6g}, "
                 f"{summary['iterations']} iterations, {summary['elapsed_s']:.1f} s "
                 f"({len(summaries)}/{len(runs)}, {time.perf_counter() - t0:.0f} s so far)",
                 file=sys.stderr,
                 flush=True,
             )
 
-    densities = {d: read_density(out / folder_name(d)) for d in runs}
+    densities = {d: read_density(out / folder_name(d)) for d in runs}  # keys: run order
     rows = comparison_rows(runs, summaries, densities, problem)
     write_csv(out / "comparison.csv", rows, COLUMNS)
     plot_comparison(rows, densities, problem, out / "comparison.png")
@@ -185,16 +211,18 @@ def compare(
 def comparison_rows(runs, summaries: dict, densities: dict, problem) -> list[dict]:
     """Rows of ``comparison.csv`` from the runs' summaries (free design first)."""
     from filters.printability import unsupported_count
+    from topopt.export import support_volume
 
     free = summaries["none"]["compliance"]
     angle = problem.build.overhang_angle
+    offset = problem.build.plate_offset / problem.grid.element_size
     rows = []
     for d in runs:
         s = summaries[d]
         increase = 100.0 * (s["compliance"] - free) / free if free else math.nan
         rows.append(
             {
-                "direction": d,
+                "direction": _label(d),
                 "compliance": s["compliance"],
                 "compliance_increase_percent": 0.0 if d == "none" else increase,
                 "volume_fraction": s["volume_fraction"],
@@ -207,7 +235,13 @@ def comparison_rows(runs, summaries: dict, densities: dict, problem) -> list[dic
                 "converged": s["converged"],
                 "free_design_unsupported_elements": None
                 if d == "none"
-                else unsupported_count(densities["none"], direction=d, overhang_angle=angle),
+                else unsupported_count(densities["none"], direction=d, overhang_angle=angle,
+                                       plate_offset=offset),
+                # supports by inspect's analysis, this design and the free one in this
+                # direction: the support the constraint saves, measured
+                "support_volume": s.get("support_volume"),
+                "free_design_support_volume": None if d == "none"
+                else support_volume(densities["none"], problem, d),
                 "results": folder_name(d),
             }
         )
@@ -233,8 +267,7 @@ def plot_comparison(rows: list[dict], densities: dict, problem, path: str | Path
     fig = plt.figure(figsize=(panel_w * cols, panel_h * design_rows + 2.8), dpi=110)
     spec = fig.add_gridspec(design_rows + 1, cols, height_ratios=[panel_h] * design_rows + [2.3])
     size = np.array(grid.shape) * grid.element_size
-    for i, row in enumerate(rows):
-        d = row["direction"]
+    for i, (row, d) in enumerate(zip(rows, densities, strict=True)):
         kind = {"projection": "3d"} if grid.dim == 3 else {}
         ax = fig.add_subplot(spec[i // cols, i % cols], **kind)
         if grid.dim == 2:
@@ -243,6 +276,7 @@ def plot_comparison(rows: list[dict], densities: dict, problem, path: str | Path
         else:
             draw_design_3d(ax, densities[d], grid.element_size)
             _draw_plate_3d(ax, d, size)
+        d = row["direction"] if isinstance(d, str) else d
         if d == "none":
             title = f"free (no build direction)\ncompliance {row['compliance']:.4g}"
         else:
@@ -258,6 +292,7 @@ def plot_comparison(rows: list[dict], densities: dict, problem, path: str | Path
     bar_ax = fig.add_subplot(spec[design_rows, :])
     built = [r for r in rows if r["direction"] != "none"]
     labels = [r["direction"] for r in built]
+    labels = [lab if len(lab) <= 8 else lab.replace(", ", ",\n") for lab in labels]
     values = [r["compliance_increase_percent"] for r in built]
     bars = bar_ax.bar(labels, values, color="#4a6fa5")
     bar_ax.bar_label(bars, fmt="%+.1f %%", fontsize=7)
@@ -279,9 +314,22 @@ def plot_comparison(rows: list[dict], densities: dict, problem, path: str | Path
     plt.close(fig)
 
 
-def _draw_plate_2d(ax, direction: str, size) -> None:
-    """Draw a thick orange bar along the side where the build plate lies."""
-    if direction == "none":
+def _draw_plate_2d(ax, direction, size) -> None:
+    """Draw a thick orange bar along the side where the build plate lies (an arrow along
+    the build direction from the plate's corner for a tilted direction)."""
+    if isinstance(direction, str) and direction == "none":
+        return
+    if not isinstance(direction, str):
+        from filters.direction import unit_vector
+
+        v = unit_vector(list(direction), 2)
+        w, h = size
+        corner = np.array([0.0 if v[0] >= 0 else w, 0.0 if v[1] >= 0 else h])
+        tangent = np.array([-v[1], v[0]]) * 0.35 * max(w, h)
+        ax.plot(*np.column_stack([corner - tangent, corner + tangent]), color="#d9822b", lw=4,
+                clip_on=False)
+        ax.annotate("", xy=corner + v * 0.3 * max(w, h), xytext=corner,
+                    arrowprops={"arrowstyle": "->", "color": "#d9822b", "lw": 2})
         return
     axis = "xy".index(direction[1])
     at_low = direction[0] == "+"
@@ -304,9 +352,18 @@ def _plate_rectangle(xy, width, height):
     return Rectangle(xy, width, height, color="#d9822b", clip_on=False)
 
 
-def _draw_plate_3d(ax, direction: str, size) -> None:
-    """Draw a translucent orange square on the plate face of the box."""
-    if direction == "none":
+def _draw_plate_3d(ax, direction, size) -> None:
+    """Draw a translucent orange square on the plate face of the box (an arrow along a
+    tilted build direction from the domain's lowest corner)."""
+    if isinstance(direction, str) and direction == "none":
+        return
+    if not isinstance(direction, str):
+        from filters.direction import unit_vector
+
+        v = unit_vector(list(direction), 3)
+        corner = np.where(v >= 0, 0.0, np.asarray(size, dtype=float))
+        tip = corner + v * 0.4 * float(max(size))
+        ax.plot(*np.column_stack([corner, tip]), color="#d9822b", lw=3)
         return
     from mpl_toolkits.mplot3d.art3d import Poly3DCollection
 

@@ -80,13 +80,17 @@ def build_filter_chain(problem, *, eta: float | None = None) -> FilterChain:
     return FilterChain(links)
 
 
-#: Mean unprinted share of the keep-in elements allowed by the keep-in constraint.
-KEEP_IN_TOLERANCE = 0.01
+#: Allowed P-mean of the unprinted share ``1 - xi_k`` of the keep-in elements, and P.
+KEEP_IN_TOLERANCE = 0.05
+KEEP_IN_POWER = 8.0
 
 
 class KeepInConstraint:
-    """Keep-in regions held up by the design: ``mean(1 - xi_k) / tol - 1 <= 0``.
+    """Keep-in regions held up by the design: ``pmean(1 - xi_k) / tol - 1 <= 0``.
 
+    ``pmean(s) = (mean(s**P))**(1/P)`` with P = 8 weighs the worst elements, so that no
+    single keep-in element is left unprinted while the mean looks small (with a plain
+    mean at 0.01 one element of a hundred stayed below 0.5 on a lug, measured).
     ``xi_k`` is the printed density the printability filter gives the keep-in elements
     that the domain can hold at all (see :func:`unholdable_keep_in`); the constraint is
     handled by MMA beside the volume constraint. The published layer filter with the
@@ -103,18 +107,27 @@ class KeepInConstraint:
         self.weights = weights_mask.ravel()[keep].astype(float)
         self.count = float(self.weights.sum())
 
-    def value(self) -> float:
-        """Constraint value at the chain's last forward pass (also the mean shortfall)."""
-        xi = self.link.keep_printed()
-        return float(self.weights @ (1.0 - xi)) / self.count / KEEP_IN_TOLERANCE - 1.0
+    def _shares(self) -> np.ndarray:
+        return np.clip(1.0 - self.link.keep_printed(), 0.0, None)
 
     def shortfall(self) -> float:
-        """Mean unprinted share of the constrained keep-in elements."""
-        return (self.value() + 1.0) * KEEP_IN_TOLERANCE
+        """P-mean unprinted share of the constrained keep-in elements."""
+        s = self._shares()
+        return float((self.weights @ s**KEEP_IN_POWER) / self.count) ** (1.0 / KEEP_IN_POWER)
+
+    def value(self) -> float:
+        """Constraint value at the chain's last forward pass."""
+        return self.shortfall() / KEEP_IN_TOLERANCE - 1.0
 
     def gradient(self) -> np.ndarray:
         """Gradient of :meth:`value` with respect to the design variables."""
-        d = self.link.keep_printed_backward(-self.weights / self.count / KEEP_IN_TOLERANCE)
+        s = self._shares()
+        m = self.shortfall()
+        if m <= 0.0:
+            return np.zeros(self.link.keep.shape)
+        # d pmean / d s_k = w_k s_k^(P-1) / (count * pmean^(P-1)); d s_k / d xi_k = -1
+        ds = self.weights * s ** (KEEP_IN_POWER - 1.0) / (self.count * m ** (KEEP_IN_POWER - 1.0))
+        d = self.link.keep_printed_backward(-ds / KEEP_IN_TOLERANCE)
         for link in reversed(self.chain.links[: self.index]):
             d = link.backward(d)
         return d

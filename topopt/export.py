@@ -84,7 +84,7 @@ def summary_dict(result, problem) -> dict:
         "caution": CAUTION,
     }
     # -- print-preparation fields (unsupported_elements, overhang_area) are added here --
-    summary.update(printability_summary(result.density, problem))
+    summary.update(printability_summary(result.density, problem, result))
     summary.update(length_scale_summary(result.density, problem))
     return summary
 
@@ -101,35 +101,65 @@ def length_scale_summary(density: np.ndarray, problem) -> dict:
     return {"min_member_size": sizes["solid"], "min_gap_size": sizes["void"]}
 
 
-def printability_summary(density: np.ndarray, problem) -> dict:
-    """``unsupported_elements`` and ``overhang_area`` of a physical density (0.5 level).
+def printability_summary(density: np.ndarray, problem, result=None) -> dict:
+    """Printability and support figures of a physical density (0.5 level).
 
-    ``unsupported_keep_in_elements`` counts the unsupported elements that lie in keep-in
-    (passive solid) regions: the printability filter prints those whatever lies below,
-    because the user requires them, so they need support structures.
-
-    Both are null when the build direction is ``"none"`` (no direction to judge by).
-    ``enforced_overhang_angle`` is the angle the grid enforces for the requested one.
+    ``unsupported_elements`` counts solid elements the exact printability rule does not
+    hold; ``unsupported_keep_in_elements`` those of them in keep-in (passive solid)
+    regions; ``unholdable_keep_in_elements`` the keep-in elements no design in the
+    domain could hold up (reported by the run, see :func:`topopt.driver.unholdable_keep_in`).
+    ``support_volume`` is the support volume the print-preparation analysis
+    (:mod:`topopt.build`, as ``inspect``) finds for the design in its build direction.
+    ``enforced_overhang_angle`` is the shallowest overhang the grid rule accepts around
+    the build direction and ``steepest_overhang_angle`` the steepest it demands.
+    All are null when there is no build direction.
     """
-    direction = problem.build.direction
-    if direction == "none":
-        return {"unsupported_elements": None, "unsupported_keep_in_elements": None,
-                "overhang_area": None, "enforced_overhang_angle": None}
-    from filters.printability import enforced_overhang_angle, overhang_area, supported_mask
+    keys = ("unsupported_elements", "unsupported_keep_in_elements", "unholdable_keep_in_elements",
+            "overhang_area", "enforced_overhang_angle", "steepest_overhang_angle",
+            "build_vector", "support_volume")
+    b = problem.build
+    if not b.active:
+        return dict.fromkeys(keys)
+    from filters.direction import unit_vector
+    from filters.printability import overhang_area, support_stencil, supported_mask
 
     grid = problem.grid
-    angle = problem.build.overhang_angle
+    angle = b.overhang_angle
+    offset = b.plate_offset / grid.element_size
     solid = np.asarray(density) > 0.5
-    unsupported = solid & ~supported_mask(solid, direction=direction, overhang_angle=angle)
+    unsupported = solid & ~supported_mask(solid, direction=b.direction, overhang_angle=angle,
+                                          plate_offset=offset)
+    stencil = support_stencil(b.direction, angle, grid.dim)
     return {
         "unsupported_elements": int(unsupported.sum()),
-        # keep-in elements print whatever lies below; these of them need supports
         "unsupported_keep_in_elements": int((unsupported & problem.passive_solid).sum()),
-        "overhang_area": overhang_area(density, direction=direction, overhang_angle=angle,
+        "unholdable_keep_in_elements": None if result is None
+        else int(getattr(result, "unholdable_keep_in", 0)),
+        "overhang_area": overhang_area(density, direction=b.direction, overhang_angle=angle,
                                        element_size=grid.element_size,
-                                       thickness=grid.thickness if grid.dim == 2 else 1.0),
-        "enforced_overhang_angle": enforced_overhang_angle(angle),
+                                       thickness=grid.thickness if grid.dim == 2 else 1.0,
+                                       plate_offset=offset),
+        "enforced_overhang_angle": stencil.enforced_angle,
+        "steepest_overhang_angle": stencil.steepest_angle,
+        "build_vector": [float(v) for v in unit_vector(b.direction, grid.dim)],
+        "support_volume": support_volume(density, problem, b.direction),
     }
+
+
+def support_volume(density: np.ndarray, problem, direction) -> float | None:
+    """Support volume ``inspect``'s analysis finds for a design built along ``direction``."""
+    from topopt.build import analyze_design
+
+    solid = np.asarray(density) > 0.5
+    if not solid.any():
+        return None
+    grid = problem.grid
+    process = {k: getattr(problem.process, k) for k in problem.process.__dataclass_fields__}
+    reports, _, _ = analyze_design(
+        solid, element_size=grid.element_size, directions=[direction],
+        overhang_angle=problem.build.overhang_angle,
+        thickness=grid.thickness if grid.dim == 2 else 1.0, process=process)
+    return float(reports[0].support_volume)
 
 
 def history_columns(history: Iterable[dict]) -> list[str]:

@@ -249,7 +249,7 @@ def test_pool_and_inline_runs_agree(small_mbb_comparison):
     "kwargs,match",
     [
         ({"directions": ["+z"]}, "directions"),
-        ({"directions": "+x,+x"}, "once"),
+        ({"directions": "+x,+x"}, "once|repeated"),
         ({"directions": ["none"]}, "directions"),
         ({"directions": []}, "at least one"),
         ({"workers": 0}, "workers"),

@@ -26,8 +26,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "--directions",
         default=None,
         metavar="LIST",
-        help="comma-separated build directions, e.g. --directions -x,+y "
-        "(default: all axis directions)",
+        help="comma-separated build directions: axis names or vectors of numbers separated "
+        "by spaces, e.g. --directions '-x,+y,1 1' (default: all axis directions)",
     )
     parser.add_argument(
         "--workers",
@@ -56,18 +56,22 @@ def run(args: argparse.Namespace) -> int:
         overwrite=args.overwrite,
     )
     if not args.quiet:
-        print(f"{'direction':>9} {'compliance':>12} {'increase %':>10} {'unsupported':>11}"
-              f" {'of them keep-in':>15}")
+        print(f"{'direction':>18} {'compliance':>12} {'increase %':>10} {'unsupported':>11}"
+              f" {'of them keep-in':>15} {'support':>9} {'free design':>11}")
         for r in rows:
             unsupported, keep_in = (
                 ("-", "-") if r["unsupported_elements"] is None
                 else (r["unsupported_elements"], r["unsupported_keep_in_elements"])
             )
+            support = "-" if r["support_volume"] is None else f"{r['support_volume']:.4g}"
+            free = ("-" if r["free_design_support_volume"] is None
+                    else f"{r['free_design_support_volume']:.4g}")
             print(
-                f"{r['direction']:>9} {r['compliance']:>12.6g} "
+                f"{r['direction']:>18} {r['compliance']:>12.6g} "
                 f"{r['compliance_increase_percent']:>+10.1f} {unsupported!s:>11} {keep_in!s:>15}"
+                f" {support:>9} {free:>11}"
             )
-        print("keep-in regions print whatever lies below them; their unsupported elements "
-              "need support structures")
+        print("support: support volume by inspect's analysis in that direction, for the "
+              "self-supporting design and for the free design")
         print(f"table: {args.out}/comparison.csv, picture: {args.out}/comparison.png")
     return 0

@@ -100,44 +100,127 @@ def parse_weights(text: str) -> dict[str, float]:
     return weights
 
 
-def parse_directions(text: str | None, ndim: int) -> list | None:
-    """Split ``"+x,-x,0 1 1"`` into axis names and vectors, checked for the dimension.
+def refine_directions(vector, radius_deg: float, count: int, ndim: int) -> list:
+    """``count`` unit vectors spread over the cap of ``radius_deg`` around ``vector``.
 
     Examples
     --------
-    >>> parse_directions("+y, -y", 2)
-    ['+y', '-y']
-    >>> parse_directions("+z, 0 1 1", 3)
-    ['+z', [0.0, 1.0, 1.0]]
+    >>> v = refine_directions([0.0, 0.0, 1.0], 10.0, 20, 3)
+    >>> len(v), bool(min(p[2] for p in v) >= math.cos(math.radians(10.0)) - 1e-12)
+    (20, True)
     """
-    from filters.direction import direction_label, unit_vector
+    import numpy as np
 
-    if text is None:
-        return None
-    out: list = []
-    for entry in (e.strip() for e in str(text).split(",")):
-        if not entry:
-            continue
-        parts = entry.split()
-        if len(parts) == 1 and parts[0][:1] in "+-" and parts[0][1:] in ("x", "y", "z"):
-            value = parts[0]
-        else:
-            try:
-                value = [float(v) for v in parts]
-            except ValueError:
-                raise ValueError(f"--directions: {entry!r} is neither an axis name such as +z "
-                                 "nor a vector of numbers such as '0 1 1'") from None
-        try:
-            unit_vector(value, ndim)
-        except ValueError as exc:
-            raise ValueError(f"--directions: {entry!r}: {exc}") from None
-        out.append(value)
-    if not out:
-        raise ValueError("--directions: give at least one direction, e.g. --directions +z,-z")
-    labels = [direction_label(d, ndim) for d in out]
-    if len(set(labels)) != len(labels):
-        raise ValueError(f"--directions: a direction is repeated in {' '.join(labels)}")
+    from filters.direction import unit_vector
+
+    d = unit_vector(list(vector), ndim)
+    r = math.radians(radius_deg)
+    if ndim == 2:
+        out = []
+        for t in np.linspace(-r, r, count):
+            c, s = math.cos(t), math.sin(t)
+            out.append([c * d[0] - s * d[1], s * d[0] + c * d[1]])
+        return out
+    helper = np.array([1.0, 0.0, 0.0]) if abs(d[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    e1 = np.cross(d, helper)
+    e1 /= np.linalg.norm(e1)
+    e2 = np.cross(d, e1)
+    out = []
+    for k in range(count):
+        # equal-area spiral over the cap (golden angle around the axis)
+        cos_t = 1.0 - (k + 0.5) / count * (1.0 - math.cos(r))
+        sin_t = math.sqrt(max(0.0, 1.0 - cos_t * cos_t))
+        phi = k * math.pi * (3.0 - math.sqrt(5.0))
+        v = cos_t * d + sin_t * (math.cos(phi) * e1 + math.sin(phi) * e2)
+        out.append([float(c) for c in v])
     return out
+
+
+def flat_face_directions(density: np.ndarray, candidates: list, count: int = 3) -> list:
+    """Build directions that lay the part's largest flat faces on the plate.
+
+    Surface normals come from the gradient of the Gaussian-smoothed voxels (width one
+    voxel). For each candidate direction ``v`` the surface whose outward normal lies
+    within 10 degrees of ``-v`` is summed; the ``count`` largest such groups give the
+    directions opposite their mean normal (re-centred within 5, 3 and 2 degrees). A flat face is the usual best seat on the
+    plate (common practice), and such a minimum is too sharp for an even spread of
+    directions to find: a face tilted by the spread's spacing already needs a wedge of
+    support under it.
+    """
+    import numpy as np
+    from scipy import ndimage
+
+    from filters.direction import unit_vector
+
+    solid = np.asarray(density) > 0.5
+    ndim = solid.ndim
+    smooth = ndimage.gaussian_filter(solid.astype(float), 1.0, mode="constant")
+    grads = np.stack(np.gradient(smooth), axis=-1)
+    weight = np.linalg.norm(grads, axis=-1)
+    mask = weight > 0.05
+    if not mask.any():
+        return []
+    normals = -grads[mask] / weight[mask][:, None]  # outward
+    w = weight[mask]
+    cos10 = math.cos(math.radians(10.0))
+    scored = []
+    for c in candidates:
+        v = unit_vector(c, ndim)
+        near = normals @ (-v) > cos10
+        if near.any():
+            scored.append((float(w[near].sum()), near))
+    out = []
+    for _, near in sorted(scored, key=lambda t: -t[0]):
+        mean = (normals[near] * w[near][:, None]).sum(axis=0)
+        # re-centre on the face: mean normal within narrower and narrower cones
+        for width in (5.0, 3.0, 2.0):
+            axis = mean / np.linalg.norm(mean)
+            near = normals @ axis > math.cos(math.radians(width))
+            if not near.any():
+                break
+            mean = (normals[near] * w[near][:, None]).sum(axis=0)
+        v = -mean / np.linalg.norm(mean)
+        if all(float(v @ np.asarray(o)) < math.cos(math.radians(3.0)) for o in out):
+            out.append([float(c) for c in v])
+        if len(out) >= count:
+            break
+    return out
+
+
+def orientation_search(density: np.ndarray, count: int, settings: dict) -> tuple[list, list]:
+    """Directions of an orientation search: the axes, ``count`` directions spread evenly,
+    the directions that seat the largest flat faces on the plate, then a finer look
+    around the three best (a cap as wide as the spread's spacing).
+    """
+    from filters.direction import direction_label
+    from topopt.build import analyze_design
+
+    ndim = density.ndim
+    coarse = search_directions(count, ndim)
+    coarse += flat_face_directions(density, coarse)
+    print(f"searching {len(coarse)} build directions ...", flush=True)
+    quick = {**settings, "keep_masks": False}
+    reports, _, _ = analyze_design(density, directions=coarse, **quick)
+    spacing = 360.0 / count if ndim == 2 else math.degrees(math.sqrt(4.0 * math.pi / count))
+    seen = {direction_label(v, ndim) for v in coarse}
+    out = list(coarse)
+    # finer and finer caps: around the three best, then twice around the best
+    for radius, best_of in ((spacing, 3), (spacing / 4.0, 1), (spacing / 16.0, 1)):
+        fine: list = []
+        for r in sorted(reports, key=lambda r: r.score)[:best_of]:
+            fine += refine_directions(list(r.vector), radius, 24 if ndim == 3 else 9, ndim)
+        fresh = []
+        for v in fine:
+            label = direction_label(v, ndim)
+            if label not in seen:
+                seen.add(label)
+                fresh.append(v)
+        if fresh:
+            more, _, _ = analyze_design(density, directions=fresh, **quick)
+            reports += more
+            out += fresh
+    print(f"... and {len(out) - len(coarse)} more around the best", flush=True)
+    return out, reports
 
 
 def search_directions(count: int, ndim: int) -> list:
@@ -267,6 +350,7 @@ def _positive(value: float, name: str) -> float:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``buttress inspect``."""
+    from filters.direction import parse_directions
     from filters.printability import enforced_overhang_angle
     from topopt.build import REPORT_FIELDS, analyze_design
 
@@ -280,23 +364,26 @@ def run(args: argparse.Namespace) -> int:
     weights = parse_weights(args.weights)
     design = load_design(args)
     directions = parse_directions(args.directions, design.density.ndim)
+    settings = {"element_size": design.element_size, "overhang_angle": design.overhang_angle,
+                "thickness": design.thickness, "process": design.process,
+                "mass_density": design.mass_density, "weights": weights, "keep_masks": True,
+                "through_holes": bool(args.through_holes)}
     if args.search is not None:
         if directions is not None:
             raise ValueError("--search and --directions exclude each other")
-        directions = search_directions(int(args.search), design.density.ndim)
-        print(f"searching {len(directions)} build directions ...", flush=True)
-    reports, best, masks = analyze_design(
-        design.density,
-        element_size=design.element_size,
-        directions=directions,
-        overhang_angle=design.overhang_angle,
-        thickness=design.thickness,
-        process=design.process,
-        mass_density=design.mass_density,
-        weights=weights,
-        keep_masks=True,
-        through_holes=bool(args.through_holes),
-    )
+        from topopt.build import rank_directions
+
+        _, found = orientation_search(design.density, int(args.search), settings)
+        reports, best = rank_directions(found, weights=weights)
+        # voxel masks (for the pictures) of the three best only
+        order = sorted(range(len(reports)), key=lambda i: reports[i].score)[:3]
+        shown, _, shown_masks = analyze_design(
+            design.density, directions=[list(reports[i].vector) for i in order], **settings)
+        masks = [None] * len(reports)
+        for i, m in zip(order, shown_masks, strict=True):
+            masks[i] = m
+    else:
+        reports, best, masks = analyze_design(design.density, directions=directions, **settings)
     rows = [r.as_dict() for r in reports]
     report = {
         "directions": rows,
@@ -401,6 +488,7 @@ def _tilted_panel_image(masks) -> np.ndarray:
     """RGB image of a tilted build in the design's own frame (3D: seen along z)."""
     import numpy as np
 
+
     def flat(a: np.ndarray) -> np.ndarray:
         b = a.any(axis=-1) if a.ndim == 3 else a
         return b.T  # rows = y, columns = x
@@ -480,7 +568,8 @@ def _draw_map(ax, reports, best: str) -> None:
 
 def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -> None:
     """Panels per direction (build direction up, plate at the bottom) and bar charts; for
-    an orientation search, a map of every direction beside the best ones' panels."""
+    an orientation search, a map of every direction beside the best ones' panels.
+    """
     import matplotlib
     import numpy as np
 

@@ -128,6 +128,10 @@ def run(args: argparse.Namespace) -> int:
         signal.signal(signal.SIGTERM, previous)
     write_results(result, problem, out)
     checkpoint_path.unlink(missing_ok=True)
+    if result.unholdable_keep_in:
+        print(f"note: {result.unholdable_keep_in} keep-in elements cannot be held up by any "
+              "design in this domain (kept-empty space or the domain edge below, no room for "
+              "a slope); they need supports (summary.json: unholdable_keep_in_elements)")
     if not args.quiet:
         print(f"{result.message}; compliance {result.compliance:.6g}, volume fraction "
               f"{result.volume_fraction:.4f}, {result.iterations} iterations, {result.elapsed_s:.1f} s")
