@@ -23,7 +23,8 @@ most 90 degrees minus the overhang angle. A straight strut inside the cone is wh
 a down-facing surface at least as steep as the overhang angle offers below each of its
 elements; requiring the whole strut (not only its foot) to print keeps a part from
 jumping sideways over a powder gap. Positions outside the domain are void, except
-under the plate, which holds everything. The depth ``D`` (1 to 12 elements) is chosen
+on or under the plate (inside the domain too, when the plate is
+raised), which holds everything. The depth ``D`` (1 to 12 elements) is chosen
 per direction and angle: the smallest for which the shallowest overhang the stencil
 accepts in some direction around the build axis is within 1 degree of the angle asked
 and the steepest it demands is within 10 degrees (see :func:`support_stencil`). For
@@ -339,17 +340,19 @@ def enforced_overhang_angle(overhang_angle: float, direction="+z", ndim: int = 3
 
 @numba.njit(cache=True)
 def _locate(e, m, shape, d, plate):  # noqa: D103 - kernel
-    # flat index of element e moved by member offset m; -1 outside the domain (then
-    # the second value says whether the place's centre lies on or under the plate,
-    # which holds everything: 1.0, else 0.0)
+    # flat index of element e moved by member offset m, or -1 when the place's centre
+    # lies on or under the plate (second value 1.0: the plate holds everything) or
+    # outside the domain (0.0: void)
     n0, n1, n2 = shape[0], shape[1], shape[2]
     i = e // (n1 * n2) + m[0]
     j = (e // n2) % n1 + m[1]
     k = e % n2 + m[2]
+    centre = (i + 0.5) * d[0] + (j + 0.5) * d[1] + (k + 0.5) * d[2]
+    if centre <= plate + 1e-9:
+        return -1, 1.0  # the plate (inside the domain too, when it is raised)
     if 0 <= i < n0 and 0 <= j < n1 and 0 <= k < n2:
         return (i * n1 + j) * n2 + k, 0.0
-    centre = (i + 0.5) * d[0] + (j + 0.5) * d[1] + (k + 0.5) * d[2]
-    return -1, 1.0 if centre <= plate + 1e-9 else 0.0
+    return -1, 0.0
 
 
 @numba.njit(cache=True)

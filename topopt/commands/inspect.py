@@ -568,8 +568,7 @@ def _draw_map(ax, reports, best: str) -> None:
 
 def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -> None:
     """Panels per direction (build direction up, plate at the bottom) and bar charts; for
-    an orientation search, a map of every direction beside the best ones' panels.
-    """
+    an orientation search, a map of every direction beside the best ones' panels."""
     import matplotlib
     import numpy as np
 
