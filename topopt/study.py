@@ -195,12 +195,14 @@ def _study_from_dict(data: Mapping, *, source: str, base_dir: Path) -> Study:
     return _build_study(base, vary, fixed=fixed, mode=mode, name=name, source=source)
 
 
-def study_of(problem: Problem, vary: Mapping[str, list], *, name: str | None = None,
-             mode: str = "product") -> Study:
+def study_of(problem: Problem, vary: Mapping[str, list], *, fixed: Mapping | None = None,
+             name: str | None = None, mode: str = "product") -> Study:
     """A study of an already loaded problem: ``vary`` maps dotted keys to lists of values.
 
-    The same checks as a study file's ``[vary]`` table apply; the cases keep the
-    problem's own source path (used in messages and for defaults such as its name).
+    The same checks as a study file's ``[vary]`` table apply, and ``fixed`` (dotted keys
+    to values) is applied to every case as a study file's ``[set]`` table is; the cases
+    keep the problem's own source path (used in messages and for defaults such as its
+    name).
 
     Examples
     --------
@@ -208,10 +210,16 @@ def study_of(problem: Problem, vary: Mapping[str, list], *, name: str | None = N
     >>> st = study_of(load_problem("examples/mbb-beam.toml"), {"build.direction": ["none", "+y"]})
     >>> [(c.settings["build.direction"], c.problem.build.direction) for c in st.cases]
     [('none', 'none'), ('+y', '+y')]
+    >>> st = study_of(load_problem("examples/mbb-beam.toml"), {"build.direction": ["+x"]},
+    ...               fixed={"optimize.volume_fraction": 0.3})
+    >>> st.cases[0].problem.optimize.volume_fraction
+    0.3
     """
     if mode not in MODES:
         raise StudyError(f"{problem.path}: mode: expected one of {', '.join(MODES)}, got {mode!r}")
-    return _build_study(problem, dict(vary), fixed={}, mode=mode,
+    fixed = dict(fixed or {})
+    base = with_settings(problem, fixed) if fixed else problem
+    return _build_study(base, dict(vary), fixed=fixed, mode=mode,
                         name=problem.name if name is None else name, source=problem.path)
 
 
