@@ -173,9 +173,19 @@ def compare(
     taken = [out / "comparison.csv"] + [out / folder_name(d) / "summary.json" for d in runs]
     if not overwrite and any(p.exists() for p in taken):
         raise ValueError(f"{out}: holds results already; use overwrite or another folder")
-    # a study of build.direction (vectors as lists, as in a problem file)
+    shared = {}
+    opt = problem.source.get("optimize", {})
+    if "projection" not in opt and "min_member_size" not in opt:
+        from topopt.problem import DEFAULT_BETA_EVERY, DEFAULT_BETA_MAX
+
+        # the free design gets the projection continuation the self-supporting runs get
+        # by default, so that every design of the comparison ends crisp and converged
+        shared["optimize.projection"] = {"every": DEFAULT_BETA_EVERY,
+                                         "beta_max": DEFAULT_BETA_MAX}
+    # a study of build.direction (vectors as lists, as in a problem file), the shared
+    # settings applied to every run as a study's [set]
     study = study_of(problem, {"build.direction": [d if isinstance(d, str) else list(d)
-                                                   for d in runs]})
+                                                   for d in runs]}, fixed=shared)
     run_of = {case.case_id: d for case, d in zip(study.cases, runs, strict=True)}
     invalid = next((c for c in study.cases if c.problem is None), None)
     if invalid is not None:

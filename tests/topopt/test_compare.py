@@ -21,7 +21,13 @@ import pytest
 from topopt.cli import main
 from topopt.compare import COLUMNS, _check_directions, compare, folder_name
 from topopt.driver import optimize
-from topopt.problem import load_problem, problem_from_dict, with_settings
+from topopt.problem import (
+    DEFAULT_BETA_EVERY,
+    DEFAULT_BETA_MAX,
+    load_problem,
+    problem_from_dict,
+    with_settings,
+)
 
 EXAMPLES = Path(__file__).resolve().parents[2] / "examples"
 DIRECTIONS_2D = ("+x", "-x", "+y", "-y")
@@ -203,12 +209,14 @@ def test_csv_agrees_with_results_folders(small_mbb_comparison):
 
 def test_compare_row_matches_an_individual_run(tmp_path):
     # compare() with one worker runs in this process: the same numbers as optimize()
+    # (the free run gets the same projection continuation as the built ones, so the
+    # separate runs use each folder's problem.toml: what a user reruns by hand)
     problem = _small_mbb()
     rows = compare(problem, directions="+y", out_dir=tmp_path / "cmp", workers=1)
-    alone = optimize(with_settings(problem, {"build.direction": "+y"}))
+    alone = optimize(load_problem(tmp_path / "cmp" / "plus-y" / "problem.toml"))
     assert rows[1]["compliance"] == pytest.approx(alone.compliance, rel=1e-9)
     assert rows[1]["iterations"] == alone.iterations
-    free = optimize(problem)
+    free = optimize(load_problem(tmp_path / "cmp" / "none" / "problem.toml"))
     assert rows[0]["compliance"] == pytest.approx(free.compliance, rel=1e-9)
     np.testing.assert_allclose(_density(tmp_path / "cmp" / "plus-y"), alone.density, atol=1e-9)
     # the results folder's problem.toml records the direction of that run
@@ -227,7 +235,13 @@ def test_bracket_comparison_equals_separate_runs(tmp_path):
     rows = compare(problem, directions=["-x", "+y"], out_dir=tmp_path / "cmp", workers=1)
     assert [r["direction"] for r in rows] == ["none", "-x", "+y"]
     for r in rows:
-        alone = optimize(with_settings(problem, {"build.direction": r["direction"]}))
+        # the variant: the direction, and for every run the projection continuation a
+        # built run gets by default (compare gives it to the free design too)
+        variant = with_settings(problem, {"build.direction": r["direction"]})
+        if variant.optimize.projection is None:
+            variant = with_settings(variant, {"optimize.projection": {
+                "every": DEFAULT_BETA_EVERY, "beta_max": DEFAULT_BETA_MAX}})
+        alone = optimize(variant)
         assert r["compliance"] == pytest.approx(alone.compliance, rel=1e-9), r["direction"]
         assert r["iterations"] == alone.iterations
         np.testing.assert_allclose(_density(tmp_path / "cmp" / r["results"]), alone.density,
