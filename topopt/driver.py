@@ -10,6 +10,7 @@ resumed; it knows nothing about files.
 
 from __future__ import annotations
 
+import math
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -100,6 +101,7 @@ class KeepInConstraint:
     """
 
     def __init__(self, chain: FilterChain, weights_mask: np.ndarray):
+        self.tolerance = KEEP_IN_TOLERANCE
         self.chain = chain
         self.index = next(i for i, link in enumerate(chain.links) if hasattr(link, "keep_printed"))
         self.link = chain.links[self.index]
@@ -117,7 +119,7 @@ class KeepInConstraint:
 
     def value(self) -> float:
         """Constraint value at the chain's last forward pass."""
-        return self.shortfall() / KEEP_IN_TOLERANCE - 1.0
+        return self.shortfall() / self.tolerance - 1.0
 
     def gradient(self) -> np.ndarray:
         """Gradient of :meth:`value` with respect to the design variables."""
@@ -127,7 +129,7 @@ class KeepInConstraint:
             return np.zeros(self.link.keep.shape)
         # d pmean / d s_k = w_k s_k^(P-1) / (count * pmean^(P-1)); d s_k / d xi_k = -1
         ds = self.weights * s ** (KEEP_IN_POWER - 1.0) / (self.count * m ** (KEEP_IN_POWER - 1.0))
-        d = self.link.keep_printed_backward(-ds / KEEP_IN_TOLERANCE)
+        d = self.link.keep_printed_backward(-ds / self.tolerance)
         for link in reversed(self.chain.links[: self.index]):
             d = link.backward(d)
         return d
@@ -279,7 +281,14 @@ def optimize(
                     move=move_limit, active=active,
                 )
             else:
-                extra = [] if keep_in is None else [(keep_in.value(), keep_in.gradient())]
+                extra = []
+                if keep_in is not None:
+                    # tightened with the projection continuation: asked at once, MMA gave
+                    # up the stiffness to print the keep-in regions of a grey design
+                    # (wall bracket built along -x, measured); 0.8 / beta down to 0.05
+                    beta = schedule.beta if schedule is not None else math.inf
+                    keep_in.tolerance = max(KEEP_IN_TOLERANCE, 0.8 / beta)
+                    extra = [(keep_in.value(), keep_in.gradient())]
                 x_new = updater(x, compliances=compliances, gradients=gradients, volume=vol,
                                 dv=dv, extra=extra)
             change = float(np.max(np.abs(x_new - x)))

@@ -416,5 +416,5 @@ def test_driver_appends_printability_filter_last():
     assert last.direction == "-x" and 30.0 <= last.enforced_angle <= 33.0
     # the smaller default move limit applies only when the file does not set one
     assert free.optimize.move_limit == 0.2
-    assert built.optimize.move_limit == 0.1
+    assert built.optimize.move_limit == 0.05
     assert with_settings(built, {"optimize.move_limit": 0.3}).optimize.move_limit == 0.3

@@ -68,8 +68,7 @@ PROBLEMS["3d-all-links"] = {
     "optimize": {**PROBLEMS["3d"]["optimize"], "projection": {"beta_start": 4.0, "eta": 0.5}},
     "build": {"direction": "+z", "overhang_angle": 45.0},
 }
-# with a build direction the projection continuation is on by default, so the printable
-# case has a projection link too
+# with a build direction the projection continuation is on by default: one link more
 LINKS = {"2d": 2, "3d": 2, "2d-printable": 4, "2d-projected": 3, "3d-all-links": 4}
 CASES = list(LINKS)
 
