@@ -105,12 +105,14 @@ def _select(points: np.ndarray, where: Mapping, tol: float) -> np.ndarray:
     return inside
 
 
-def reference_compliance(table: Mapping, density: np.ndarray) -> float:
+def reference_compliance(table: Mapping, density: np.ndarray, *,
+                         displacements: list | None = None) -> float:
     """Compliance of a physical density for a parsed problem file, solved by scikit-fem.
 
     Modified SIMP E(rho) = E (void + (1 - void) rho**p), loads split equally over the
     selected nodes, one solve per load case, compliance f.u summed over the cases
-    (DESIGN.md, "Conventions" and "Problem file").
+    (DESIGN.md, "Conventions" and "Problem file"). The displacement of each case (in
+    scikit-fem numbering) is appended to ``displacements`` when a list is given.
     """
     from skfem import condense, solve
 
@@ -145,10 +147,51 @@ def reference_compliance(table: Mapping, density: np.ndarray) -> float:
     for f in cases.values():
         u = solve(*condense(K, f, D=fixed))
         total += float(f @ u)
+        if displacements is not None:
+            displacements.append(u)
     return total
+
+
+def reference_von_mises(table: Mapping, density: np.ndarray) -> list[np.ndarray]:
+    """Solid-material von Mises stress at element centres per load case, by scikit-fem.
+
+    The displacement of each case is solved as in :func:`reference_compliance`; the
+    strain is scikit-fem's ``sym_grad`` at a one-point (centre) quadrature, the stress
+    the solid material's (plane stress in 2D), and the von Mises stress is computed from
+    the principal stresses (eigenvalues of the stress tensor). Returned in buttress
+    element order.
+    """
+    from skfem import Basis, ElementHex1, ElementQuad1, ElementVector
+    from skfem.helpers import sym_grad
+
+    solutions: list[np.ndarray] = []
+    reference_compliance(table, density, displacements=solutions)
+    dom = table["domain"]
+    shape = tuple(dom["shape"])
+    model = reference_model(shape, float(dom["element_size"]))
+    dim = model.dim
+    # one quadrature point at the centre of the reference element [0, 1]^dim
+    centre = Basis(model.mesh, ElementVector(ElementQuad1() if dim == 2 else ElementHex1()),
+                   quadrature=(np.full((dim, 1), 0.5), np.ones(1)))
+    E = float(table["material"]["youngs_modulus"])
+    nu = float(table["material"]["poisson_ratio"])
+    mu = E / (2.0 * (1.0 + nu))
+    lam = E * nu / (1.0 - nu**2) if dim == 2 else E * nu / ((1.0 + nu) * (1.0 - 2.0 * nu))
+    out = []
+    for u in solutions:
+        eps = np.asarray(sym_grad(centre.interpolate(u)))[..., 0]  # (dim, dim, n_el), 1 point
+        sigma = lam * np.trace(eps)[None, None] * np.eye(dim)[:, :, None] + 2.0 * mu * eps
+        tensor = np.zeros((eps.shape[2], 3, 3))
+        tensor[:, :dim, :dim] = np.moveaxis(sigma, -1, 0)  # plane stress: s_zz = 0
+        s = np.linalg.eigvalsh(tensor)
+        vm = np.sqrt(((s[:, 0] - s[:, 1]) ** 2 + (s[:, 1] - s[:, 2]) ** 2
+                      + (s[:, 2] - s[:, 0]) ** 2) / 2.0)
+        out.append(vm[model.element_map])
+    return out
 
 
 @pytest.fixture
 def skfem_reference():
     """The scikit-fem reference: ``model(shape, h, t)`` and ``compliance(table, density)``."""
-    return SimpleNamespace(model=reference_model, compliance=reference_compliance)
+    return SimpleNamespace(model=reference_model, compliance=reference_compliance,
+                           von_mises=reference_von_mises)

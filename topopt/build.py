@@ -22,21 +22,13 @@ from dataclasses import asdict, dataclass, fields, replace
 
 import numpy as np
 
+from topopt.problem import ProcessSettings
+
 AXIS_NAMES = "xyz"
 
-#: Typical process values (mm, s, h and currency units); placeholders of typical
-#: magnitude for metal powder-bed fusion, not data of any machine. ``recoat_time_s`` is
-#: per layer; the rates are in length unit cubed per hour of scanning.
-PROCESS_DEFAULTS: dict[str, float] = {
-    "layer_thickness": 0.03,  # 20-60 um common, 30 um typical (common practice)
-    "recoat_time_s": 10.0,  # about 5-15 s per layer (from memory)
-    "part_rate": 10000.0,  # about 5-20 cm^3/h for one laser (from memory)
-    "support_rate": 30000.0,  # supports are scanned sparsely, so faster (from memory)
-    "support_fill": 0.2,  # about 10-30 % of the supported volume (from memory)
-    "overhead_h": 1.0,  # set-up, heating, cooling
-    "powder_price": 0.1,  # currency per unit mass
-    "tool_access": 2.0,  # narrowest opening a support can be removed through
-}
+#: Default process values (mm, s, h, currency per kg), taken from the one source of
+#: their names and defaults, :class:`topopt.problem.ProcessSettings` (see its notes).
+PROCESS_DEFAULTS: dict[str, float] = asdict(ProcessSettings())
 
 #: Fields of one direction's report, in the order written to inspect.json / inspect.csv.
 REPORT_FIELDS = (
@@ -59,6 +51,8 @@ REPORT_FIELDS = (
     "build_time_h",
     "material_cost",
     "score",
+    "rank",
+    "flag",
 )
 
 
@@ -71,7 +65,9 @@ class BuildReport:
     volumes are material volumes: the supported column times the support fill.
     ``overhang_area`` is the down-facing area needing support, measured on the voxel
     faces, i.e. its footprint on the build plate. ``score`` is filled in by
-    :func:`rank_directions` (lower is better; NaN until ranked).
+    :func:`rank_directions` (lower is better; NaN until ranked), and so are ``rank``
+    (1 = recommended; 0 until ranked) and ``flag`` (why a direction cannot be cleaned:
+    ``"unremovable support"``, ``"trapped powder"`` or both; empty when it can).
     """
 
     direction: str
@@ -93,6 +89,8 @@ class BuildReport:
     material_cost: float
     score: float = float("nan")
     vector: tuple[float, ...] = ()
+    rank: int = 0
+    flag: str = ""
 
     def as_dict(self) -> dict:
         """Plain dict in :data:`REPORT_FIELDS` order (JSON-ready)."""
@@ -375,7 +373,7 @@ def direction_masks(
     tool_access: float = PROCESS_DEFAULTS["tool_access"],
     smoothing: float = 1.5,
     window: int = 6,
-    through_holes: bool = False,
+    through_holes: bool = True,
     open_void: tuple | None = None,
 ) -> BuildMasks:
     """Voxel masks of overhangs, supports, removable space and trapped powder.
@@ -399,10 +397,10 @@ def direction_masks(
     window : int
         Layers over which the slope under a face is measured (see Notes).
     through_holes : bool
-        2D only. False (default): the design is a section and a void closed in the plane
-        is a closed cavity. True: the design is a plate extruded to its thickness, so
+        2D only. True (default): the design is a plate extruded to its thickness, so
         every hole is open on both faces; no powder is trapped, and a tool reaches any
-        place of a hole wide enough for it.
+        place of a hole wide enough for it. False: the design is a section of a closed
+        part and a void closed in the plane is a closed cavity.
 
     Returns
     -------
@@ -553,7 +551,8 @@ def report_from_masks(
 ) -> BuildReport:
     """Turn the masks of one direction into figures (see :class:`BuildReport`).
 
-    Without ``mass_density`` the mass and the material cost are NaN (not estimated).
+    ``mass_density`` is in kg per length unit cubed, the powder price per kg. Without
+    ``mass_density`` the mass and the material cost are NaN (not estimated).
     """
     from filters.direction import direction_label, unit_vector
 
@@ -625,7 +624,8 @@ def analyze_design(
     mass_density: float | None = None,
     weights: Mapping[str, float] | None = None,
     keep_masks: bool = False,
-    through_holes: bool = False,
+    through_holes: bool = True,
+    allow_unclean: bool = False,
 ) -> tuple[list[BuildReport], str, list[BuildMasks]]:
     """Analyse a design for several build directions and rank them.
 
@@ -644,14 +644,18 @@ def analyze_design(
     process : mapping, optional
         Process values overriding :data:`PROCESS_DEFAULTS`.
     mass_density : float, optional
-        Mass per unit volume of the solid; without it mass and cost are NaN and the
+        Mass of the solid per unit volume, in kg per length unit cubed (so masses are
+        in kg and ``powder_price`` is per kg); without it mass and cost are NaN and the
         cost term drops out of the score.
     weights : mapping, optional
         Weights of ``time``, ``cost`` and ``support`` in the score (1 each by default).
     keep_masks : bool
         Return the voxel masks too (for pictures).
     through_holes : bool
-        2D only: holes open through the thickness (see :func:`direction_masks`).
+        2D only: holes open through the thickness (default; see :func:`direction_masks`).
+    allow_unclean : bool
+        Rank by score alone, also directions with unremovable support or trapped
+        powder (see :func:`rank_directions`).
 
     Returns
     -------
@@ -714,7 +718,7 @@ def analyze_design(
         )
         if keep_masks:
             kept.append(masks)
-    ranked, best = rank_directions(reports, weights=weights)
+    ranked, best = rank_directions(reports, weights=weights, allow_unclean=allow_unclean)
     return ranked, best, kept
 
 
@@ -723,7 +727,10 @@ SCORE_TERMS = {"time": "build_time_h", "cost": "material_cost", "support": "supp
 
 
 def rank_directions(
-    reports: Sequence[BuildReport], *, weights: Mapping[str, float] | None = None
+    reports: Sequence[BuildReport],
+    *,
+    weights: Mapping[str, float] | None = None,
+    allow_unclean: bool = False,
 ) -> tuple[list[BuildReport], str]:
     """Score each direction by weighted, normalised time, cost and support; lower is better.
 
@@ -731,6 +738,11 @@ def rank_directions(
     [0, 1]); the score is the weighted mean of the terms. A term that is NaN for some
     direction (the cost without a mass density) is left out. Ties go to the first
     direction.
+
+    A direction that leaves support no tool can reach or powder that cannot drain is
+    flagged and, unless ``allow_unclean``, ranked after every direction without such
+    problems whatever its score: such a part may be impossible to finish. The returned
+    reports keep their order; ``rank`` gives the recommendation order (1 = ``best``).
 
     Examples
     --------
@@ -762,9 +774,33 @@ def rank_directions(
         if top > 0:
             scores += w[term] * column / top
     scores = scores / total if total > 0 else scores
-    ranked = [replace(r, score=float(s)) for r, s in zip(reports, scores, strict=True)]
-    best = ranked[int(np.argmin(scores))].direction
+    flags = [cleaning_flag(r) for r in reports]
+    unclean = np.array([bool(f) and not allow_unclean for f in flags])
+    # unclean after clean, then by score, then in the given order (ties to the first)
+    order = np.lexsort((np.arange(len(reports)), scores, unclean))
+    rank = np.empty(len(reports), dtype=int)
+    rank[order] = np.arange(1, len(reports) + 1)
+    ranked = [replace(r, score=float(s), rank=int(k), flag=f)
+              for r, s, k, f in zip(reports, scores, rank, flags, strict=True)]
+    best = ranked[int(order[0])].direction
     return ranked, best
+
+
+def cleaning_flag(report: BuildReport) -> str:
+    """Why a direction's print cannot be cleaned ("" when it can).
+
+    Examples
+    --------
+    >>> r = BuildReport("+z", 45, 1, 1, 1, 1, 0, 0, 0, 1.0, 0, 0, 0.5, 0, 0, 1.0, 1.0)
+    >>> cleaning_flag(r)
+    'unremovable support'
+    """
+    reasons = []
+    if report.unremovable_support_volume > 0:
+        reasons.append("unremovable support")
+    if report.trapped_powder_volume > 0:
+        reasons.append("trapped powder")
+    return "; ".join(reasons)
 
 
 def report_field_names() -> list[str]:

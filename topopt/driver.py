@@ -232,6 +232,7 @@ def optimize(
                                       n_designs=len(chains), move=move_limit,
                                       extra_constraints=int(keep_in is not None))
 
+    damping = MoveDamping(move_limit, floor=settings.change_tolerance)
     x = initial_design(problem)
     history: list[dict] = []
     start_iteration = 0
@@ -322,6 +323,10 @@ def optimize(
                 break
             if schedule is not None and schedule.step(change=change):
                 set_beta(chains, schedule.beta)
+            if schedule is not None:
+                move_limit = damping.step(change, final=schedule.at_max)
+            if updater is not None:
+                updater.mma.move = move_limit
             if checkpoint is not None and iteration % settings.checkpoint_every == 0:
                 checkpoint(state(iteration))
     except KeyboardInterrupt:
@@ -348,6 +353,37 @@ def optimize(
         grey_level=grey_level(physical),
         unholdable_keep_in=int(unholdable.sum()),
     )
+
+
+class MoveDamping:
+    """Halve the move limit while a design at its final sharpness keeps swinging.
+
+    Once the projection has reached its final beta (runs with projection only), every
+    ``patience`` (10) iterations whose largest design change stayed at or above ``floor``
+    halve the move limit, down to ``floor`` (the change tolerance: a design still
+    moving by the full move limit does not count as converged, since convergence needs
+    a change strictly below the tolerance). Measured on the wall
+    bracket: OC on the free design swung two elements by the full move limit in a
+    two-iteration cycle for 200 iterations at a compliance constant to 1e-4, and MMA
+    with the keep-in constraint kept changes of 0.02-0.05 for 150 iterations.
+    """
+
+    def __init__(self, move: float, *, floor: float, patience: int = 10):
+        self.move = float(move)
+        self.floor = min(float(floor), self.move)
+        self.patience = int(patience)
+        self._restless = 0
+
+    def step(self, change: float, *, final: bool) -> float:
+        """The move limit for the next iteration."""
+        if not final or change < self.floor:
+            self._restless = 0
+            return self.move
+        self._restless += 1
+        if self._restless >= self.patience:
+            self.move = max(self.floor, 0.5 * self.move)
+            self._restless = 0
+        return self.move
 
 
 def _robust_designs(chains, model, x, blueprint_eval, blueprint_gradient):

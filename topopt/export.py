@@ -48,13 +48,20 @@ def _jsonable(value):
 
 
 def write_csv(path: str | Path, rows: Iterable[dict], columns: list[str]) -> None:
-    """Write rows (dicts) as CSV with the given columns, atomically."""
+    """Write rows (dicts) as CSV with the given columns, atomically.
+
+    A missing value (None, or a NaN number: not estimated) is an empty cell.
+    """
     buf = io.StringIO()
     writer = csv.DictWriter(buf, fieldnames=columns, extrasaction="ignore", lineterminator="\n")
     writer.writeheader()
     for row in rows:
-        writer.writerow({k: ("" if row.get(k) is None else row.get(k)) for k in columns})
+        writer.writerow({k: ("" if _missing(row.get(k)) else row.get(k)) for k in columns})
     write_text(path, buf.getvalue())
+
+
+def _missing(value) -> bool:
+    return value is None or (isinstance(value, (float, np.floating)) and not np.isfinite(value))
 
 
 def write_npz(path: str | Path, **arrays: np.ndarray) -> None:
@@ -80,13 +87,26 @@ def summary_dict(result, problem) -> dict:
         "solver": result.solver,
         "shape": list(problem.grid.shape),
         "element_size": problem.grid.element_size,
+        "units": problem.units.name,
         "version": __version__,
         "caution": CAUTION,
     }
     # -- print-preparation fields (unsupported_elements, overhang_area) are added here --
     summary.update(printability_summary(result.density, problem, result))
     summary.update(length_scale_summary(result.density, problem))
+    summary.update(structural_summary_of(result.density, problem))
     return summary
+
+
+def structural_summary_of(density: np.ndarray, problem) -> dict:
+    """Per load case displacements at the loads and von Mises stresses, and the mass.
+
+    See :mod:`topopt.stress` for which stress is reported (solid-material stress of
+    elements with density >= 0.5, at their centres).
+    """
+    from topopt.stress import structural_results, structural_summary
+
+    return structural_summary(structural_results(problem, density))
 
 
 def length_scale_summary(density: np.ndarray, problem) -> dict:
@@ -210,31 +230,60 @@ def write_png(path: str | Path, density: np.ndarray, problem) -> None:
     import matplotlib.pyplot as plt
 
     grid = problem.grid
-    fig = plt.figure(figsize=(7, 4.6), dpi=120)
+    unit = problem.units.length
+    fig = plt.figure(figsize=(7, 4.6) if grid.dim == 2 else (10, 4.8), dpi=120)
     if grid.dim == 2:
         ax = fig.add_subplot(111)
-        draw_design_2d(ax, density, grid.element_size)
+        image = draw_design_2d(ax, density, grid.element_size, length_unit=unit)
+        fig.colorbar(image, ax=ax, shrink=0.8, label="physical density (-)")
     else:
-        ax = fig.add_subplot(111, projection="3d")
-        draw_design_3d(ax, density, grid.element_size)
-    ax.set_title(f"{problem.name}  (build direction: {problem.build.direction})", fontsize=9)
+        from topopt.render import draw_print_3d, legend_handles
+
+        build = problem.build
+        keep_out = problem.passive_void if problem.passive_void.any() else None
+        # from above and from below: faces needing support face down
+        for k, view in enumerate(("iso", "below")):
+            ax = fig.add_subplot(1, 2, k + 1, projection="3d")
+            draw_print_3d(ax, density, element_size=grid.element_size,
+                          direction=build.direction, overhang_angle=build.overhang_angle,
+                          plate_offset=build.plate_offset, keep_out=keep_out,
+                          length_unit=unit, view=view)
+            ax.set_title("from above" if view == "iso" else "from below", fontsize=8, y=1.06)
+        fig.legend(handles=legend_handles(direction=build.direction,
+                                          keep_out=keep_out is not None),
+                   loc="upper right", fontsize=7)
+    fig.suptitle(f"{problem.name}  (build direction {_direction_text(problem.build.direction)}"
+                 f" points up)" if problem.build.active
+                 else f"{problem.name}  (free: no build direction)", fontsize=9)
     fig.text(0.01, 0.01, CAUTION, fontsize=5.5, wrap=True, color="0.35")
     atomic_write(path, lambda h: fig.savefig(h, format="png"))
     plt.close(fig)
 
 
-def draw_design_2d(ax, density: np.ndarray, element_size: float) -> None:
-    """Draw a 2D density field (x to the right, y up) in length units."""
+def _direction_text(direction) -> str:
+    if isinstance(direction, str):
+        return direction
+    return "[" + ", ".join(f"{v:g}" for v in direction) + "]"
+
+
+def draw_design_2d(ax, density: np.ndarray, element_size: float, *, length_unit: str = ""):
+    """Draw a 2D density field (x to the right, y up) in length units; returns the image."""
     nx, ny = density.shape
-    ax.imshow(density.T, origin="lower", cmap="gray_r", vmin=0.0, vmax=1.0,
-              extent=(0, nx * element_size, 0, ny * element_size), interpolation="nearest")
+    image = ax.imshow(density.T, origin="lower", cmap="gray_r", vmin=0.0, vmax=1.0,
+                      extent=(0, nx * element_size, 0, ny * element_size),
+                      interpolation="nearest")
     ax.set_aspect("equal")
-    ax.set_xlabel("x")
-    ax.set_ylabel("y")
+    suffix = f" ({length_unit})" if length_unit else ""
+    ax.set_xlabel("x" + suffix)
+    ax.set_ylabel("y" + suffix)
+    return image
 
 
 def draw_design_3d(ax, density: np.ndarray, element_size: float) -> None:
-    """Draw the 0.5 surface of a 3D density field with simple shading."""
+    """Draw the 0.5 surface of a 3D density field with simple shading (no build direction).
+
+    :func:`topopt.render.draw_print_3d` draws the print: plate, lighting, support faces.
+    """
     from mpl_toolkits.mplot3d.art3d import Poly3DCollection
     from skimage import measure
 
@@ -270,12 +319,30 @@ def write_vtu(path: str | Path, density: np.ndarray, problem) -> None:
     if grid.dim == 2:
         points = np.column_stack([points, np.zeros(len(points))])
     cell_type = "quad" if grid.dim == 2 else "hexahedron"
-    mesh = meshio.Mesh(points, [(cell_type, grid.element_nodes)],
-                       cell_data={"density": [np.asarray(density, dtype=float).ravel()]})
+    cell_data = {"density": [np.asarray(density, dtype=float).ravel()]}
+    point_data = {}
+    if np.any(np.asarray(density) >= 0.5):
+        from topopt.stress import structural_results
+
+        # per load case: von Mises stress of solid elements (NaN elsewhere), displacement
+        for case in structural_results(problem, np.asarray(density, dtype=float)).cases:
+            label = _field_label(case.name)
+            cell_data[f"von_mises_{label}"] = [case.von_mises.ravel()]
+            disp = case.displacement
+            if grid.dim == 2:
+                disp = np.column_stack([disp, np.zeros(len(disp))])
+            point_data[f"displacement_{label}"] = disp
+    mesh = meshio.Mesh(points, [(cell_type, grid.element_nodes)], cell_data=cell_data,
+                       point_data=point_data)
     # meshio picks the format from the suffix, so write to a .vtu temporary name.
     tmp = Path(path).with_name(f".{Path(path).stem}.partial.vtu")
     meshio.write(tmp, mesh, file_format="vtu")
     os.replace(tmp, path)
+
+
+def _field_label(case: str) -> str:
+    """A load-case name as a VTU field-name suffix (letters, digits, '_' and '-')."""
+    return "".join(ch if ch.isalnum() or ch in "_-" else "_" for ch in case) or "case"
 
 
 def write_stl(path: str | Path, density: np.ndarray, problem) -> None:

@@ -9,6 +9,7 @@ thread (see :func:`single_thread`), or the workers fight over the cores.
 from __future__ import annotations
 
 import contextlib
+import sys
 from collections.abc import Callable, Iterable, Iterator
 from typing import Any
 
@@ -18,6 +19,38 @@ def single_thread():
     from threadpoolctl import threadpool_limits
 
     return threadpool_limits(limits=1)
+
+
+@contextlib.contextmanager
+def workers_skip_main_script():
+    """Start worker processes without running the caller's ``__main__`` script in them.
+
+    A spawned worker normally imports the parent's main script (as ``__mp_main__``) so
+    that functions defined there can be unpickled. Our jobs call functions of
+    ``topopt`` only, and a plain user script without an ``if __name__ == "__main__":``
+    guard would run again in every worker, start workers of its own and fail. The
+    spawn start method finds the script through ``__main__.__file__`` and
+    ``__main__.__spec__`` (``multiprocessing.spawn.get_preparation_data``), so both are
+    hidden while workers start and put back afterwards.
+    """
+    main = sys.modules.get("__main__")
+    if main is None:
+        yield
+        return
+    missing = object()
+    saved = {name: getattr(main, name, missing) for name in ("__file__", "__spec__")}
+    try:
+        if saved["__file__"] is not missing:
+            del main.__file__
+        main.__spec__ = None
+        yield
+    finally:
+        for name, value in saved.items():
+            if value is missing:
+                with contextlib.suppress(AttributeError):
+                    delattr(main, name)
+            else:
+                setattr(main, name, value)
 
 
 def process_map(
@@ -41,7 +74,12 @@ def process_map(
 
     pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
     try:
-        futures = {pool.submit(func, *args, **kwargs): key for key, args, kwargs in jobs}
+        # Workers start as jobs are submitted (all of them here, before any result is
+        # awaited); a function of the main script needs the script in the workers.
+        starting = (contextlib.nullcontext() if getattr(func, "__module__", "") == "__main__"
+                    else workers_skip_main_script())
+        with starting:
+            futures = {pool.submit(func, *args, **kwargs): key for key, args, kwargs in jobs}
         for future in as_completed(futures):
             try:
                 yield futures[future], future.result(), None

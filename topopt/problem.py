@@ -109,17 +109,66 @@ class BuildSettings:
 
 
 @dataclass(frozen=True)
-class ProcessSettings:
-    """Print-preparation estimates. Defaults are typical magnitudes for mm, not machine data."""
+class UnitSystem:
+    """A consistent set of units: lengths, forces, stresses and the mass unit they imply.
 
-    layer_thickness: float = 0.03
-    recoat_time_s: float = 10.0
-    part_rate: float = 10000.0
-    support_rate: float = 30000.0
-    support_fill: float = 0.2
-    overhead_h: float = 1.0
-    powder_price: float = 0.1
-    tool_access: float = 2.0
+    ``metres_per_length`` and ``kg_per_mass`` convert to SI; masses are reported in kg.
+    """
+
+    name: str
+    length: str
+    force: str
+    stress: str
+    mass: str
+    metres_per_length: float
+    kg_per_mass: float
+
+
+#: Unit systems a problem file may name in ``units`` (the first is the default).
+UNIT_SYSTEMS: dict[str, UnitSystem] = {
+    "mm-N-MPa-tonne": UnitSystem("mm-N-MPa-tonne", "mm", "N", "MPa", "tonne", 1e-3, 1000.0),
+    "m-N-Pa-kg": UnitSystem("m-N-Pa-kg", "m", "N", "Pa", "kg", 1.0, 1.0),
+}
+DEFAULT_UNITS = "mm-N-MPa-tonne"
+
+
+@dataclass(frozen=True)
+class ProcessSettings:
+    """Print-preparation values: the one source of their names and defaults.
+
+    Defaults are typical magnitudes for metal powder-bed fusion in mm, not data of any
+    machine; :meth:`defaults_for` converts the length-based ones to another unit system.
+    ``powder_price`` is per kg in every unit system.
+    """
+
+    layer_thickness: float = 0.03  # length; 20-60 um common, 30 um typical (common practice)
+    recoat_time_s: float = 10.0  # s per layer; about 5-15 s (from memory)
+    part_rate: float = 10000.0  # length^3 per hour; about 5-20 cm^3/h for one laser (from memory)
+    support_rate: float = 30000.0  # length^3 per hour; supports are scanned sparsely (from memory)
+    support_fill: float = 0.2  # share of the supported column; about 10-30 % (from memory)
+    overhead_h: float = 1.0  # h; set-up, heating, cooling
+    # currency per kg: metal powders cost tens (steels, aluminium) to a few hundred
+    # (titanium, nickel alloys) per kg (from memory; order of magnitude only)
+    powder_price: float = 100.0
+    tool_access: float = 2.0  # length; narrowest opening a support can be removed through
+
+    #: exponent of the length unit in each field (the rest do not depend on it)
+    LENGTH_POWER = {"layer_thickness": 1, "part_rate": 3, "support_rate": 3, "tool_access": 1}
+
+    @classmethod
+    def defaults_for(cls, units: str | UnitSystem = DEFAULT_UNITS) -> ProcessSettings:
+        """The default values expressed in ``units`` (the dataclass defaults are in mm).
+
+        Examples
+        --------
+        >>> ProcessSettings.defaults_for("m-N-Pa-kg").tool_access
+        0.002
+        """
+        system = UNIT_SYSTEMS[units] if isinstance(units, str) else units
+        scale = 1e-3 / system.metres_per_length  # one mm in the system's length unit
+        base = cls()
+        return cls(**{name: getattr(base, name) * scale ** cls.LENGTH_POWER.get(name, 0)
+                      for name in cls.__dataclass_fields__})
 
 
 @dataclass(frozen=True, eq=False)
@@ -138,6 +187,7 @@ class Problem:
     process: ProcessSettings = field(default_factory=ProcessSettings)
     source: Mapping = field(default_factory=dict, repr=False)
     path: str = "<problem>"
+    units: UnitSystem = field(default_factory=lambda: UNIT_SYSTEMS[DEFAULT_UNITS])
 
     @property
     def load_cases(self) -> tuple[str, ...]:
@@ -312,7 +362,8 @@ def _list_of_tables(r: _Reader, data: Mapping, key: str) -> list[Mapping]:
     return value
 
 
-TOP_KEYS = {"name", "domain", "material", "restraints", "loads", "passive", "optimize", "build", "process"}
+TOP_KEYS = {"name", "units", "domain", "material", "restraints", "loads", "passive", "optimize",
+            "build", "process"}
 OPTIMIZE_KEYS = {
     "volume_fraction", "filter_radius", "penalty", "method", "max_iterations",
     "change_tolerance", "move_limit", "solver", "checkpoint_every", "projection",
@@ -353,6 +404,8 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         raise r.fail("(top level)", "expected a TOML document")
     r.no_unknown(data, "", TOP_KEYS)
     name = r.string(data, "name", "name", default=Path(source).stem)
+    units = UNIT_SYSTEMS[r.string(data, "units", "units", default=DEFAULT_UNITS,
+                                  choices=tuple(UNIT_SYSTEMS))]
 
     dom = r.table(data, "domain", {"shape", "element_size", "thickness"})
     shape_raw = dom.get("shape")
@@ -569,7 +622,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         raise r.fail("optimize.solver", f"expected one of {sorted(set(SOLVERS) | {'auto'})}, got {optimize.solver!r}")
 
     pr = r.table(data, "process", set(ProcessSettings.__dataclass_fields__), required=False)
-    defaults = ProcessSettings()
+    defaults = ProcessSettings.defaults_for(units)
     process_values = {}
     for key in ProcessSettings.__dataclass_fields__:
         high = 1.0 if key == "support_fill" else None
@@ -582,6 +635,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         name=name, grid=grid, material=material, restraints=tuple(restraints),
         loads=tuple(loads), passive_solid=solid, passive_void=void, optimize=optimize,
         build=build, process=process, source=copy.deepcopy(dict(data)), path=source,
+        units=units,
     )
 
 

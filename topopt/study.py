@@ -411,8 +411,12 @@ def _run_dask(
     try:
         if scheduler is None:
             # Loopback only: the local cluster is never reachable from other machines.
-            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                   host="127.0.0.1", dashboard_address=None)
+            from topopt.parallel import workers_skip_main_script
+
+            # the workers need topopt only, not the caller's script (see the helper)
+            with workers_skip_main_script():
+                cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                       host="127.0.0.1", dashboard_address=None)
             client = Client(cluster)
         else:
             try:
@@ -698,7 +702,8 @@ def print_figures(problem: Problem, folder: Path) -> dict:
             directions=None if direction == "none" else [direction],
             overhang_angle=problem.build.overhang_angle,
             thickness=grid.thickness if grid.dim == 2 else 1.0, process=process,
-            mass_density=problem.material.mass_density,
+            mass_density=(None if problem.material.mass_density is None
+                          else problem.material.mass_density * problem.units.kg_per_mass),
         )
     except (ValueError, TypeError) as exc:
         # Keep the optimisation result; say why the figures are missing.
@@ -746,7 +751,9 @@ def plot_study(rows: list[dict], keys: tuple[str, ...], path: str | Path, *, tit
     One panel per varied key (other than the build direction) with one line per build
     direction (and, in ``"product"`` mode, per combination of the other varied values:
     in ``"zip"`` mode they change together along the line); a last panel plots
-    compliance against support volume and rings the non-dominated cases.
+    compliance against support volume and rings the non-dominated cases (support volume,
+    compliance and volume fraction all count: a lighter design is not beaten by a
+    stiffer, heavier one).
     """
     import matplotlib
 
@@ -818,7 +825,7 @@ def _plot_against(ax, rows, ok, key, others, directions, colours) -> None:
 
 
 def _direction_label(direction: str) -> str:
-    return "unconstrained" if direction == "none" else f"build {direction}"
+    return "free (no build direction)" if direction == "none" else f"build {direction}"
 
 
 def _plot_tradeoff(ax, ok, keys, directions, colours) -> None:
@@ -832,7 +839,13 @@ def _plot_tradeoff(ax, ok, keys, directions, colours) -> None:
         return
     xs = [r["support_volume"] for r in pts]
     ys = [r["compliance"] for r in pts]
-    front = non_dominated(list(zip(xs, ys, strict=True)))
+    # Best designs weigh mass too: a case is ringed unless another has no more support,
+    # no higher compliance and no more material (volume fraction) and is better in one.
+    mass = [float(r["volume_fraction"]) if _is_number(r.get("volume_fraction")) else 0.0
+            for r in pts]
+    front = non_dominated(list(zip(xs, ys, mass, strict=True)))
+    # the staircase joins the cases best in support and compliance alone (a subset)
+    stairs = non_dominated(list(zip(xs, ys, strict=True)))
     for direction in dict.fromkeys(directions.get(r["case"], "") for r in pts):
         members = [r for r in pts if directions.get(r["case"], "") == direction]
         ax.scatter([r["support_volume"] for r in members], [r["compliance"] for r in members],
@@ -840,11 +853,13 @@ def _plot_tradeoff(ax, ok, keys, directions, colours) -> None:
                    zorder=2)
     fx = [x for x, f in zip(xs, front, strict=True) if f]
     fy = [y for y, f in zip(ys, front, strict=True) if f]
-    order = sorted(range(len(fx)), key=lambda i: fx[i])
-    ax.plot([fx[i] for i in order], [fy[i] for i in order], color="black", linewidth=0.8,
+    sx = [x for x, f in zip(xs, stairs, strict=True) if f]
+    sy = [y for y, f in zip(ys, stairs, strict=True) if f]
+    order = sorted(range(len(sx)), key=lambda i: sx[i])
+    ax.plot([sx[i] for i in order], [sy[i] for i in order], color="black", linewidth=0.8,
             drawstyle="steps-post", zorder=1)
     ax.scatter(fx, fy, s=70, facecolors="none", edgecolors="black", linewidths=1.2,
-               label="non-dominated", zorder=3)
+               label="non-dominated in support, compliance, volume fraction", zorder=3)
     # Number the front (by support volume) and list what each case is, so close
     # points keep readable labels.
     listed = sorted((r for r, f in zip(pts, front, strict=True) if f),

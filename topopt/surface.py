@@ -116,11 +116,17 @@ def isosurface(
     element_size: float,
     level: float = 0.5,
     smoothing_iterations: int = 0,
+    keep_points: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Mesh the closed ``level`` surface of a 3D density by marching cubes.
 
     The density is sampled at element centres and padded with a layer of void, so the
     surface is closed where the part touches the domain boundary.
+
+    Smoothing never moves the part out of its design domain: vertices on a domain face
+    keep their coordinate across that face (they may slide within it), every vertex is
+    kept inside the domain box, and vertices within one element size of a
+    ``keep_points`` point (e.g. the restrained nodes) do not move at all.
 
     Parameters
     ----------
@@ -132,6 +138,8 @@ def isosurface(
         Iso-level, strictly between 0 and 1.
     smoothing_iterations : int
         Taubin smoothing passes (0 = none); see :func:`taubin_smooth`.
+    keep_points : ndarray (k, 3), optional
+        Points (e.g. restrained nodes) near which smoothing leaves the surface in place.
 
     Returns
     -------
@@ -172,7 +180,19 @@ def isosurface(
     if mesh_volume(vertices, faces) < 0:
         faces = faces[:, [0, 2, 1]]
     if smoothing_iterations:
-        vertices = taubin_smooth(vertices, faces, iterations=int(smoothing_iterations))
+        size = np.array(density.shape, dtype=float) * h
+        tol = 1e-9 * h
+        # a coordinate on a domain face stays on it; marching cubes puts such vertices
+        # exactly on the face (the crossing of a full element and the void padding)
+        held = (np.abs(vertices) <= tol) | (np.abs(vertices - size) <= tol)
+        if keep_points is not None and len(keep_points):
+            from scipy.spatial import cKDTree
+
+            points = np.asarray(keep_points, dtype=float).reshape(-1, 3)
+            near = np.isfinite(cKDTree(points).query(vertices, distance_upper_bound=h * (1 + 1e-9))[0])
+            held[near] = True
+        vertices = taubin_smooth(vertices, faces, iterations=int(smoothing_iterations),
+                                 held=held, bounds=(np.zeros(3), size))
     return vertices, faces
 
 
@@ -184,14 +204,20 @@ def taubin_smooth(
     lam: float = 0.5,
     mu: float = -0.53,
     keep_volume: bool = True,
+    held: np.ndarray | None = None,
+    bounds: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> np.ndarray:
     """Taubin lambda/mu smoothing with the umbrella operator, volume kept.
 
     Each pass moves every vertex ``lam`` of the way to the mean of its neighbours, then
     ``mu`` (negative) of the way back, which removes the voxel staircase without the
     steady shrinking of plain Laplacian smoothing (Taubin, "A signal processing approach
-    to fair surface design", SIGGRAPH 1995). What shrinkage is left is undone by scaling
-    about the centroid so the enclosed volume is the same as before (``keep_volume``).
+    to fair surface design", SIGGRAPH 1995). What shrinkage is left is undone
+    (``keep_volume``): by scaling about the centroid when nothing is held, otherwise by
+    moving the free coordinates along the vertex normals by one common offset.
+
+    ``held`` (bool, shape of ``vertices`` or (n,)) marks coordinates (or whole vertices)
+    that never move; ``bounds`` = (low, high) keeps every vertex inside a box.
 
     Examples
     --------
@@ -216,15 +242,60 @@ def taubin_smooth(
     degree[degree == 0] = 1.0
     mean_of_neighbours = sparse.diags(1.0 / degree) @ adjacency
     volume_before = mesh_volume(vertices, faces)
+    free = np.ones_like(vertices, dtype=bool)
+    if held is not None:
+        held = np.asarray(held, dtype=bool)
+        free &= ~(held[:, None] if held.ndim == 1 else held)
+
+    def limit(points: np.ndarray) -> np.ndarray:
+        points = np.where(free, points, vertices)
+        return points if bounds is None else np.clip(points, bounds[0], bounds[1])
+
     out = vertices.copy()
     for _ in range(int(iterations)):
-        out = out + lam * (mean_of_neighbours @ out - out)
-        out = out + mu * (mean_of_neighbours @ out - out)
+        out = limit(out + lam * (mean_of_neighbours @ out - out))
+        out = limit(out + mu * (mean_of_neighbours @ out - out))
     if keep_volume and volume_before > 0:
-        volume_after = mesh_volume(out, faces)
-        if volume_after > 0:
-            centre = out.mean(axis=0)
-            out = centre + (out - centre) * (volume_before / volume_after) ** (1.0 / 3.0)
+        if free.all():
+            volume_after = mesh_volume(out, faces)
+            if volume_after > 0:
+                centre = out.mean(axis=0)
+                scaled = centre + (out - centre) * (volume_before / volume_after) ** (1.0 / 3.0)
+                out = limit(scaled)
+                if not np.array_equal(out, scaled):  # the box cut it: offset instead
+                    out = _restore_volume(out, faces, volume_before, limit, free)
+        else:
+            out = _restore_volume(out, faces, volume_before, limit, free)
+    return out
+
+
+def _restore_volume(vertices, faces, target, limit, free, *, steps: int = 8) -> np.ndarray:
+    """Offset the free coordinates along the vertex normals until the volume is ``target``.
+
+    dV/dt = area swept by the free part of the surface, so each step is a Newton step
+    t = (target - V) / A_free; clamping to the bounds may leave a small remainder.
+    """
+    out = vertices
+    for _ in range(steps):
+        gap = target - mesh_volume(out, faces)
+        if abs(gap) <= 1e-12 * abs(target):
+            break
+        a, b, c = (out[faces[:, i]] for i in range(3))
+        weighted = np.cross(b - a, c - a) / 2.0  # face normal times area
+        normals = np.zeros_like(out)
+        for i in range(3):
+            np.add.at(normals, faces[:, i], weighted / 3.0)  # area-weighted vertex normal
+        normals = np.where(free, normals, 0.0)
+        swept = float(np.sum(np.linalg.norm(normals, axis=1)))
+        if swept <= 0:
+            break
+        unit = np.divide(normals, np.linalg.norm(normals, axis=1, keepdims=True),
+                         out=np.zeros_like(normals),
+                         where=np.linalg.norm(normals, axis=1, keepdims=True) > 0)
+        moved = limit(out + unit * (gap / swept))
+        if np.allclose(moved, out, rtol=0, atol=0):
+            break
+        out = moved
     return out
 
 
@@ -596,6 +667,7 @@ def write_design_stl(
     element_size: float,
     thickness: float = 1.0,
     smoothing_iterations: int = 0,
+    keep_points: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Write the printable surface of a design as binary STL and return the mesh.
 
@@ -615,7 +687,8 @@ def write_design_stl(
     density = np.asarray(density, dtype=float)
     if density.ndim == 3:
         vertices, faces = isosurface(
-            density, element_size=element_size, smoothing_iterations=smoothing_iterations
+            density, element_size=element_size, smoothing_iterations=smoothing_iterations,
+            keep_points=keep_points,
         )
     elif density.ndim == 2:
         vertices, faces = extrude_contour(density, element_size=element_size, thickness=thickness)

@@ -98,7 +98,8 @@ def test_inspect_results_folder_writes_the_report(tmp_path, capsys):
     plus_y = report["directions"][2]
     # by hand: 4 x 6 stem + 16 x 2 bar = 56 elements of 0.5 x 0.5 x 2 (thickness)
     assert plus_y["part_volume"] == pytest.approx(56 * 0.5)
-    assert plus_y["part_mass"] == pytest.approx(56 * 0.5 * 0.0027)
+    # mass in kg: the default unit system is mm-N-MPa-tonne, so the density is per tonne
+    assert plus_y["part_mass"] == pytest.approx(56 * 0.5 * 0.0027 * 1000.0)
     # the bar overhangs the stem by 6 elements each side; 45 degrees lets one print
     assert plus_y["overhang_area"] == pytest.approx(2 * 5 * 0.5 * 2.0)
     assert plus_y["support_on_part_volume"] == 0.0
@@ -162,18 +163,22 @@ def test_trapped_powder_and_unremovable_support_are_reported(tmp_path, capsys):
     assert "trap" in text and "cannot reach" in text
 
 
-def test_through_holes_option_for_2d_plates(tmp_path):
+def test_through_holes_default_and_closed_holes_option_for_2d_plates(tmp_path):
     ring = np.zeros((20, 20))
     ring[2:18, 2:18] = 1.0
     ring[6:14, 6:14] = 0.0  # a 4 mm square hole in a plate, tool 2 mm
     np.save(tmp_path / "ring.npy", ring)
-    closed, opened = tmp_path / "c", tmp_path / "o"
+    closed, opened, default = tmp_path / "c", tmp_path / "o", tmp_path / "d"
     common = ["--element-size", "0.5", "--directions=+y"]
-    assert main(["inspect", str(tmp_path / "ring.npy"), *common, "--out", str(closed)]) == 0
+    assert main(["inspect", str(tmp_path / "ring.npy"), *common, "--closed-holes",
+                 "--out", str(closed)]) == 0
     assert main(["inspect", str(tmp_path / "ring.npy"), *common, "--through-holes",
                  "--out", str(opened)]) == 0
+    assert main(["inspect", str(tmp_path / "ring.npy"), *common, "--out", str(default)]) == 0
     rc, _ = read_report(closed)
     ro, _ = read_report(opened)
+    assert read_report(default)[0]["directions"] == ro["directions"]
+    assert ro["through_holes"] is True and rc["through_holes"] is False
     assert rc["directions"][0]["trapped_cavities"] == 1
     assert rc["directions"][0]["unremovable_support_volume"] > 0
     assert ro["directions"][0]["trapped_cavities"] == 0

@@ -1,8 +1,10 @@
 """Write a mesh or picture of a results folder's design.
 
 stl: the closed surface at the 0.5 level (marching cubes in 3D, optionally smoothed with
---smooth Taubin passes; in 2D the 0.5 contour extruded to the thickness); vtu: one cell per
-element with its density; png: the picture. Lengths are in the problem's unit.
+--smooth Taubin passes that keep the part inside its design domain and leave the faces on
+the domain boundary and at the restraints in place; in 2D the 0.5 contour extruded to the
+thickness); vtu: one cell per element with its density; png: the picture. Lengths are in
+the problem's unit. An existing file is replaced only with --overwrite.
 """
 
 from __future__ import annotations
@@ -22,6 +24,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="Taubin smoothing passes for stl (volume kept; default 0)")
     parser.add_argument("--out", default=None,
                         help="file to write (default: RESULT/design.FORMAT)")
+    parser.add_argument("--overwrite", action="store_true",
+                        help="replace the file if it exists")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -57,9 +61,14 @@ def run(args: argparse.Namespace) -> int:
     out = Path(args.out) if args.out else folder / f"design.{args.format}"
     if out.suffix.lower() != f".{args.format}":
         raise ValueError(f"{out}: the file name must end in .{args.format}")
+    if out.exists() and not args.overwrite:
+        raise ValueError(f"{out}: exists already; use --overwrite or another --out")
     if args.format == "stl":
+        restrained = np.unique(np.concatenate([r.nodes for r in problem.restraints]))
+        keep = problem.grid.node_coordinates()[restrained] if problem.grid.dim == 3 else None
         write_design_stl(out, density, element_size=problem.grid.element_size,
-                         thickness=problem.grid.thickness, smoothing_iterations=args.smooth)
+                         thickness=problem.grid.thickness, smoothing_iterations=args.smooth,
+                         keep_points=keep)
     else:
         WRITERS[args.format](out, density, problem)
     print(f"wrote {out}")

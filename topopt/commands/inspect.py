@@ -21,12 +21,11 @@ from typing import TYPE_CHECKING
 if TYPE_CHECKING:  # numpy is imported inside the functions: building the command line's
     import numpy as np  # parser (`buttress --help`) must not load it
 
-HELP = "check a design for overhangs, supports, trapped powder, build time and cost"
+from topopt.export import CAUTION  # the one caution text
 
-CAUTION = (
-    "Results are a design aid. Estimates of build time and cost are first-order; confirm "
-    "them, and the supports, with the machine's own build preparation."
-)
+HELP = "check a design for overhangs, supports, trapped powder, build time and cost"
+ESTIMATES_NOTE = ("Build time and cost are first-order estimates: confirm them, and the supports, "
+                  "with the machine's own build preparation.")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -48,13 +47,23 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "voxelising an STL")
     parser.add_argument("--thickness", type=float, default=None,
                         help="out-of-plane thickness of a 2D design (default: problem or 1)")
+    parser.add_argument("--units", default=None, metavar="SYSTEM",
+                        help="unit system of a design without a problem file: mm-N-MPa-tonne "
+                             "(default) or m-N-Pa-kg; sets the process defaults' lengths")
     parser.add_argument("--overhang-angle", type=float, default=None, metavar="DEG",
                         help="self-supporting angle from the plate (default: problem or 45)")
     parser.add_argument("--weights", default="time=1,cost=1,support=1",
                         help="weights of the ranking, e.g. time=1,cost=0,support=2")
-    parser.add_argument("--through-holes", action="store_true",
-                        help="2D designs: treat the design as a plate extruded to its thickness, "
-                             "so holes are open on both faces (no trapped powder)")
+    holes = parser.add_mutually_exclusive_group()
+    holes.add_argument("--through-holes", dest="closed_holes", action="store_false", default=False,
+                       help="2D designs: a plate extruded to its thickness, holes open on both "
+                            "faces, no trapped powder (the default)")
+    holes.add_argument("--closed-holes", dest="closed_holes", action="store_true", default=False,
+                       help="2D designs: a section of a closed part, so a void closed in the "
+                            "plane traps powder")
+    parser.add_argument("--allow-unclean", action="store_true",
+                        help="rank by score alone: a direction with unremovable support or "
+                             "trapped powder may then be named best (it is still flagged)")
     parser.add_argument("--overwrite", action="store_true",
                         help="replace an inspect report already in --out")
 
@@ -68,8 +77,15 @@ class LoadedDesign:
     thickness: float
     overhang_angle: float
     process: dict
-    mass_density: float | None
+    mass_density: float | None  # as in the problem file (its mass unit per length unit cubed)
     source: str
+    units: str | None = None
+    kg_per_mass: float = 1.0  # the problem's mass unit in kg
+
+    @property
+    def mass_density_kg(self) -> float | None:
+        """Mass density in kg per length unit cubed (masses in kg, powder price per kg)."""
+        return None if self.mass_density is None else self.mass_density * self.kg_per_mass
 
 
 def parse_weights(text: str) -> dict[str, float]:
@@ -207,7 +223,9 @@ def orientation_search(density: np.ndarray, count: int, settings: dict) -> tuple
     # finer and finer caps: around the three best, then twice around the best
     for radius, best_of in ((spacing, 3), (spacing / 4.0, 1), (spacing / 16.0, 1)):
         fine: list = []
-        for r in sorted(reports, key=lambda r: r.score)[:best_of]:
+        # clean directions first (as the ranking does), then by score
+        unclean = not settings.get("allow_unclean", False)
+        for r in sorted(reports, key=lambda r: (unclean and bool(r.flag), r.score))[:best_of]:
             fine += refine_directions(list(r.vector), radius, 24 if ndim == 3 else 9, ndim)
         fresh = []
         for v in fine:
@@ -331,14 +349,26 @@ def load_design(args: argparse.Namespace) -> LoadedDesign:
         angle = float(args.overhang_angle)
     else:
         angle = problem.build.overhang_angle if problem is not None else 45.0
+    from topopt.problem import UNIT_SYSTEMS, ProcessSettings
+
+    units = getattr(args, "units", None)
+    if units is not None and units not in UNIT_SYSTEMS:
+        raise ValueError(f"--units: expected one of {', '.join(UNIT_SYSTEMS)}, got {units!r}")
     if problem is not None:
+        if units is not None and units != problem.units.name:
+            raise ValueError(f"--units {units} disagrees with the problem file's units "
+                             f"{problem.units.name!r}; leave --units out")
         process = {k: float(getattr(problem.process, k)) for k in PROCESS_DEFAULTS}
         mass_density = problem.material.mass_density
+        units = problem.units.name
     else:
-        process, mass_density = dict(PROCESS_DEFAULTS), None
+        defaults = ProcessSettings.defaults_for(units) if units else ProcessSettings()
+        process = {k: float(getattr(defaults, k)) for k in PROCESS_DEFAULTS}
+        mass_density = None
     return LoadedDesign(density=density, element_size=element_size, thickness=thickness,
                         overhang_angle=angle, process=process, mass_density=mass_density,
-                        source=str(path))
+                        source=str(path), units=units,
+                        kg_per_mass=1.0 if problem is None else problem.units.kg_per_mass)
 
 
 def _positive(value: float, name: str) -> float:
@@ -366,17 +396,20 @@ def run(args: argparse.Namespace) -> int:
     directions = parse_directions(args.directions, design.density.ndim)
     settings = {"element_size": design.element_size, "overhang_angle": design.overhang_angle,
                 "thickness": design.thickness, "process": design.process,
-                "mass_density": design.mass_density, "weights": weights, "keep_masks": True,
-                "through_holes": bool(args.through_holes)}
+                # masses in kg, the powder price per kg
+                "mass_density": design.mass_density_kg, "weights": weights, "keep_masks": True,
+                "through_holes": not args.closed_holes,
+                "allow_unclean": bool(args.allow_unclean)}
     if args.search is not None:
         if directions is not None:
             raise ValueError("--search and --directions exclude each other")
         from topopt.build import rank_directions
 
         _, found = orientation_search(design.density, int(args.search), settings)
-        reports, best = rank_directions(found, weights=weights)
-        # voxel masks (for the pictures) of the three best only
-        order = sorted(range(len(reports)), key=lambda i: reports[i].score)[:3]
+        reports, best = rank_directions(found, weights=weights,
+                                        allow_unclean=bool(args.allow_unclean))
+        # voxel masks (for the pictures) of the three best-ranked only
+        order = sorted(range(len(reports)), key=lambda i: reports[i].rank)[:3]
         shown, _, shown_masks = analyze_design(
             design.density, directions=[list(reports[i].vector) for i in order], **settings)
         masks = [None] * len(reports)
@@ -389,12 +422,14 @@ def run(args: argparse.Namespace) -> int:
         "directions": rows,
         "best": best,
         "process": {**design.process, "mass_density": design.mass_density,
+                    "units": design.units, "mass_unit": "kg", "powder_price_per": "kg",
                     "overhang_angle": design.overhang_angle,
                     "enforced_overhang_angle": min(
                         enforced_overhang_angle(design.overhang_angle, r.vector,
                                                 design.density.ndim) for r in reports)},
-        "through_holes": bool(args.through_holes) and design.density.ndim == 2,
+        "through_holes": (not args.closed_holes) and design.density.ndim == 2,
         "weights": weights,
+        "allow_unclean": bool(args.allow_unclean),
         "design": {"source": design.source, "shape": list(design.density.shape),
                    "element_size": design.element_size,
                    "thickness": design.thickness if design.density.ndim == 2 else None},
@@ -406,28 +441,56 @@ def run(args: argparse.Namespace) -> int:
     out.mkdir(parents=True, exist_ok=True)
     write_csv(out / "inspect.csv", rows, list(REPORT_FIELDS))
     write_inspect_png(out / "inspect.png", reports, masks, best=best,
-                      element_size=design.element_size)
+                      element_size=design.element_size, length_unit=_length_unit(design))
+    if design.density.ndim == 3:  # the print itself, shaded: best-ranked directions
+        _write_print_views(out / "inspect-3d.png", design, reports)
     write_json(out / "inspect.json", report)  # last: its presence marks a finished report
     _print_table(reports if len(reports) <= 12 else _shortlist(reports, best), best,
                  design.mass_density is None)
-    print(f"report: {out}/inspect.json, table: {out}/inspect.csv, picture: {out}/inspect.png")
+    print(f"report: {out}/inspect.json, table: {out}/inspect.csv, picture: {out}/inspect.png"
+          + (f", 3D views: {out}/inspect-3d.png" if design.density.ndim == 3 else ""))
     return 0
 
 
+def _length_unit(design: LoadedDesign) -> str:
+    """The design's length unit ("" when no unit system is known)."""
+    from topopt.problem import UNIT_SYSTEMS
+
+    return UNIT_SYSTEMS[design.units].length if design.units else ""
+
+
+def _write_print_views(path: Path, design: LoadedDesign, reports) -> None:
+    """inspect-3d.png: the three best-ranked directions seen from the side and from below."""
+    from topopt.render import write_print_views
+
+    top = sorted(reports, key=lambda r: r.rank)[:3]
+    unit = _length_unit(design)
+    write_print_views(
+        path, design.density, directions=[r.vector or r.direction for r in top],
+        titles=[f"{r.rank}. {r.direction}" + (f" ({r.flag})" if r.flag else "") for r in top],
+        element_size=design.element_size, overhang_angle=design.overhang_angle,
+        length_unit=unit, caution=CAUTION)
+
+
 def _shortlist(reports, best: str, count: int = 10) -> list:
-    """The best-scoring reports (for a long orientation search), best first."""
-    ordered = sorted(reports, key=lambda r: r.score)
+    """The best-ranked reports (for a long orientation search), best first."""
+    ordered = sorted(reports, key=lambda r: r.rank)
     return ordered[:count]
+
+
+def _cell(value: float, width: int) -> str:
+    """A number for the printed table, blank when it is not estimated (NaN)."""
+    return " " * width if not math.isfinite(value) else f"{value:{width}.4g}"
 
 
 def _print_table(reports, best: str, no_mass: bool) -> None:
     print(f"{'direction':>24} {'height':>8} {'layers':>6} {'overhang':>9} {'support':>9} "
-          f"{'unremov.':>9} {'trapped':>9} {'time_h':>7} {'cost':>9} {'score':>6}")
+          f"{'unremov.':>9} {'trapped':>9} {'time_h':>7} {'cost':>9} {'score':>6} {'rank':>4}")
     for r in reports:
         print(f"{r.direction:>24} {r.build_height:8.4g} {r.layers:6d} {r.overhang_area:9.4g} "
               f"{r.support_volume:9.4g} {r.unremovable_support_volume:9.4g} "
-              f"{r.trapped_powder_volume:9.4g} {r.build_time_h:7.3g} {r.material_cost:9.4g} "
-              f"{r.score:6.3f}")
+              f"{r.trapped_powder_volume:9.4g} {r.build_time_h:7.3g} {_cell(r.material_cost, 9)} "
+              f"{r.score:6.3f} {r.rank:4d}{'  (' + r.flag + ')' if r.flag else ''}")
     if no_mass:
         print("no mass density given ([material] mass_density): mass and cost not estimated")
     for r in reports:
@@ -438,6 +501,16 @@ def _print_table(reports, best: str, no_mass: bool) -> None:
             print(f"warning: {r.direction}: {r.unremovable_support_volume:.4g} of support "
                   "lies where a tool cannot reach it")
     print(f"best build direction: {best}")
+    chosen = next(r for r in reports if r.direction == best)
+    if chosen.flag:
+        print(f"warning: no direction can be cleaned completely; {best} has {chosen.flag}"
+              if not any(not r.flag for r in reports) else
+              f"warning: {best} has {chosen.flag} and is named best only because "
+              "--allow-unclean was given")
+    elif any(r.flag and r.score < chosen.score for r in reports):
+        print("note: directions with a lower score are ranked after it because of unremovable "
+              "support or trapped powder (--allow-unclean ranks by score alone)")
+    print(ESTIMATES_NOTE)
     print(CAUTION)
 
 
@@ -566,7 +639,8 @@ def _draw_map(ax, reports, best: str) -> None:
     ax.tick_params(labelsize=6)
 
 
-def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -> None:
+def write_inspect_png(path, reports, masks, *, best: str, element_size: float,
+                      length_unit: str = "") -> None:
     """Panels per direction (build direction up, plate at the bottom) and bar charts; for
     an orientation search, a map of every direction beside the best ones' panels."""
     import matplotlib
@@ -580,7 +654,7 @@ def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -
 
     many = len(reports) > 9
     if many:
-        order = sorted(range(len(reports)), key=lambda i: reports[i].score)[:3]
+        order = sorted(range(len(reports)), key=lambda i: reports[i].rank)[:3]
         shown = [(reports[i], masks[i]) for i in order]
     else:
         shown = list(zip(reports, masks, strict=True))
@@ -589,8 +663,12 @@ def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -
     rows = math.ceil(n / cols)
     fig = plt.figure(figsize=(3.6 * cols + (1.5 if many else 0), 3.1 * rows + 3.0), dpi=110)
     grid = fig.add_gridspec(rows + 1, cols, height_ratios=[3.0] * rows + [2.6])
+    unit = f" [{length_unit}]" if length_unit else ""
     for k, (r, m) in enumerate(shown):
-        _draw_panel(fig.add_subplot(grid[k // cols, k % cols]), r, m, element_size, best)
+        ax = fig.add_subplot(grid[k // cols, k % cols])
+        _draw_panel(ax, r, m, element_size, best)
+        ax.set_xlabel(ax.get_xlabel() + unit, fontsize=7)  # axes in the length unit
+        ax.set_ylabel(ax.get_ylabel() + unit, fontsize=7)
     legend = [Patch(color=_COLOURS[k], label=label) for k, label in (
         ("solid", "part"), ("overhang", "surface needing support"), ("support", "support"),
         ("unremovable", "support out of tool reach"), ("trapped", "trapped powder"))]
@@ -599,9 +677,10 @@ def write_inspect_png(path, reports, masks, *, best: str, element_size: float) -
         _draw_map(fig.add_subplot(grid[rows, :]), reports, best)
     else:
         names = [r.direction for r in reports]
-        bars = (("support volume", [r.support_volume for r in reports]),
+        volume = f" ({length_unit}³)" if length_unit else ""
+        bars = (("support volume" + volume, [r.support_volume for r in reports]),
                 ("build time (h)", [r.build_time_h for r in reports]),
-                ("material cost", [r.material_cost for r in reports]))
+                ("material cost (currency)", [r.material_cost for r in reports]))
         sub = grid[rows, :].subgridspec(1, 3, wspace=0.35)
         for k, (label, values) in enumerate(bars):
             ax = fig.add_subplot(sub[0, k])
