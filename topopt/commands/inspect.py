@@ -21,8 +21,6 @@ from typing import TYPE_CHECKING
 if TYPE_CHECKING:  # numpy is imported inside the functions: building the command line's
     import numpy as np  # parser (`buttress --help`) must not load it
 
-from topopt.export import CAUTION  # the one caution text
-
 HELP = "check a design for overhangs, supports, trapped powder, build time and cost"
 ESTIMATES_NOTE = ("Build time and cost are first-order estimates: confirm them, and the supports, "
                   "with the machine's own build preparation.")
@@ -383,6 +381,7 @@ def run(args: argparse.Namespace) -> int:
     from filters.direction import parse_directions
     from filters.printability import enforced_overhang_angle
     from topopt.build import REPORT_FIELDS, analyze_design
+    from topopt.export import CAUTION  # the one caution text
 
     out = Path(args.out)
     if out.exists() and not out.is_dir():
@@ -461,6 +460,7 @@ def _length_unit(design: LoadedDesign) -> str:
 
 def _write_print_views(path: Path, design: LoadedDesign, reports) -> None:
     """inspect-3d.png: the three best-ranked directions seen from the side and from below."""
+    from topopt.export import CAUTION  # the one caution text
     from topopt.render import write_print_views
 
     top = sorted(reports, key=lambda r: r.rank)[:3]
@@ -484,6 +484,7 @@ def _cell(value: float, width: int) -> str:
 
 
 def _print_table(reports, best: str, no_mass: bool) -> None:
+    from topopt.export import CAUTION  # the one caution text
     print(f"{'direction':>24} {'height':>8} {'layers':>6} {'overhang':>9} {'support':>9} "
           f"{'unremov.':>9} {'trapped':>9} {'time_h':>7} {'cost':>9} {'score':>6} {'rank':>4}")
     for r in reports:
@@ -645,6 +646,8 @@ def write_inspect_png(path, reports, masks, *, best: str, element_size: float,
     an orientation search, a map of every direction beside the best ones' panels."""
     import matplotlib
     import numpy as np
+
+    from topopt.export import CAUTION  # the one caution text
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
