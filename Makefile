@@ -24,6 +24,7 @@ bench: setup
 	$(BIN)/python benchmarks/iteration.py --dims 3 --out benchmarks/results-3d.json
 	$(BIN)/python benchmarks/iteration.py --report benchmarks/results-2d.json benchmarks/results-3d.json \
 		--notes benchmarks/notes.md --markdown benchmarks/results.md
+	$(BIN)/python benchmarks/startup.py --markdown benchmarks/startup.md
 
 clean:
 	rm -rf demo-results .pytest_cache

@@ -23,6 +23,7 @@ __all__ = [
     "axis_directions",
     "direction_label",
     "element_heights",
+    "parse_directions",
     "plate_level",
     "spread_directions",
     "unit_vector",
@@ -169,3 +170,41 @@ def spread_directions(count: int, ndim: int) -> np.ndarray:
     r = np.sqrt(np.maximum(0.0, 1.0 - z * z))
     phi = k * math.pi * (3.0 - math.sqrt(5.0))
     return np.column_stack([r * np.cos(phi), r * np.sin(phi), z])
+
+
+def parse_directions(text: str | None, ndim: int) -> list | None:
+    """Split ``"+x,-x,0 1 1"`` into axis names and vectors, checked for the dimension.
+
+    Examples
+    --------
+    >>> parse_directions("+y, -y", 2)
+    ['+y', '-y']
+    >>> parse_directions("+z, 0 1 1", 3)
+    ['+z', [0.0, 1.0, 1.0]]
+    """
+    if text is None:
+        return None
+    out: list = []
+    for entry in (e.strip() for e in str(text).split(",")):
+        if not entry:
+            continue
+        parts = entry.split()
+        if len(parts) == 1 and parts[0][:1] in "+-" and parts[0][1:] in ("x", "y", "z"):
+            value = parts[0]
+        else:
+            try:
+                value = [float(v) for v in parts]
+            except ValueError:
+                raise ValueError(f"--directions: {entry!r} is neither an axis name such as +z "
+                                 "nor a vector of numbers such as '0 1 1'") from None
+        try:
+            unit_vector(value, ndim)
+        except ValueError as exc:
+            raise ValueError(f"--directions: {entry!r}: {exc}") from None
+        out.append(value)
+    if not out:
+        raise ValueError("--directions: give at least one direction, e.g. --directions +z,-z")
+    labels = [direction_label(d, ndim) for d in out]
+    if len(set(labels)) != len(labels):
+        raise ValueError(f"--directions: a direction is repeated in {' '.join(labels)}")
+    return out

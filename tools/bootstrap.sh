@@ -24,7 +24,7 @@ fi
 
 echo "bootstrap: installing buttress and its dependencies into $VENV"
 "$VENV/bin/python" -m pip install -q --upgrade pip >/dev/null 2>&1
-"$VENV/bin/python" -m pip install -q -e ".[test,cluster]" || { echo "bootstrap: pip install failed"; exit 1; }
+"$VENV/bin/python" -m pip install -q -e ".[dev]" || { echo "bootstrap: pip install failed"; exit 1; }
 
 # scikit-sparse 0.4 builds against the SuiteSparse 5 headers of Debian 12.
 if [ -f /usr/include/suitesparse/cholmod.h ]; then

@@ -25,8 +25,8 @@ COMMANDS: dict[str, str] = {
 
 def version_text() -> str:
     """Version, the solver ``auto`` would use and the BLAS libraries in use."""
-    from topopt import __version__
     from topopt.solvers import blas_info, cholmod_available, cholmod_blas
+    from topopt.version import __version__
 
     if cholmod_available():
         solver = f"cholmod (scikit-sparse; CHOLMOD linked to {cholmod_blas()})"

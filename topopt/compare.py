@@ -1,11 +1,14 @@
 """Optimise one problem free and self-supporting for several build directions, side by side.
 
-:func:`compare` runs the problem with the printability filter off (``"none"``) and on
-for each requested build direction, each into its own results folder, then writes
-``comparison.csv`` (one row per run) and ``comparison.png`` (the designs with the build
-plate drawn on each, and a bar chart of the compliance increase against the free
-design). Runs go to a pool of processes limited to the core count, each with its BLAS
-held to one thread, so parallel runs do not fight over the cores.
+:func:`compare` is a study that varies ``build.direction``: the problem with the
+printability filter off (``"none"``) and on for each requested build direction. The
+cases run through the study runner (:func:`topopt.study.run_cases`), each into its own
+results folder (``none``, ``plus-x``, ``minus-y`` ...), and are read back with the study's
+results reader; then :func:`compare` writes ``comparison.csv`` (one row per run) and
+``comparison.png`` (the designs with the build plate drawn on each, and a bar chart of
+the compliance increase against the free design). Runs go to a pool of processes
+limited to the core count, each with its BLAS held to one thread, so parallel runs do
+not fight over the cores.
 """
 
 from __future__ import annotations
@@ -78,7 +81,7 @@ def _check_directions(directions, dim: int) -> list:
     if directions is None:
         return list(allowed)
     if isinstance(directions, str):
-        from topopt.commands.inspect import parse_directions
+        from filters.direction import parse_directions
 
         directions = parse_directions(directions, dim)
     directions = list(directions)
@@ -109,25 +112,6 @@ def _check_workers(workers, n_runs: int) -> int:
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise ValueError(f"workers must be a positive integer, got {workers!r}")
     return max(1, min(workers, cores, n_runs))
-
-
-def _run_one(source: dict, path: str, folder: str) -> dict:
-    """Optimise one variant and write its results folder (runs in a worker process)."""
-    from topopt.driver import optimize
-    from topopt.export import summary_dict, write_results
-    from topopt.problem import problem_from_dict
-
-    problem = problem_from_dict(source, source=path)
-    result = optimize(problem)
-    write_results(result, problem, folder)
-    return summary_dict(result, problem)
-
-
-def _run_one_single_thread(source: dict, path: str, folder: str) -> dict:
-    from topopt.parallel import single_thread
-
-    with single_thread():
-        return _run_one(source, path, folder)
 
 
 def compare(
@@ -171,11 +155,15 @@ def compare(
 
     Examples
     --------
-    >>> # rows = compare(load_problem("examples/mbb-beam.toml"), out_dir="cmp")
-    >>> # [(r["direction"], r["compliance_increase_percent"]) for r in rows]
+    >>> from topopt.problem import load_problem, with_settings
+    >>> beam = with_settings(load_problem("examples/mbb-beam.toml"), {"optimize.max_iterations": 5})
+    >>> rows = compare(beam, directions="+y", out_dir="cmp", workers=1)
+    >>> [(r["direction"], r["results"]) for r in rows]
+    [('none', 'none'), ('+y', 'plus-y')]
     """
     from topopt.export import write_csv
-    from topopt.problem import with_settings
+    from topopt.problem import ProblemError
+    from topopt.study import read_density, read_summary, run_cases, study_of
 
     runs = ["none"] + _check_directions(directions, problem.grid.dim)
     n_workers = _check_workers(workers, len(runs))
@@ -194,16 +182,26 @@ def compare(
         # by default, so that every design of the comparison ends crisp and converged
         shared["optimize.projection"] = {"every": DEFAULT_BETA_EVERY,
                                          "beta_max": DEFAULT_BETA_MAX}
-    variants = {d: with_settings(problem, {**shared,
-                                           "build.direction": d if isinstance(d, str) else list(d)})
-                for d in runs}
+    # a study of build.direction (vectors as lists, as in a problem file), the shared
+    # settings applied to every run as a study's [set]
+    study = study_of(problem, {"build.direction": [d if isinstance(d, str) else list(d)
+                                                   for d in runs]}, fixed=shared)
+    run_of = {case.case_id: d for case, d in zip(study.cases, runs, strict=True)}
+    invalid = next((c for c in study.cases if c.problem is None), None)
+    if invalid is not None:
+        raise ProblemError(f"{problem.path}: {invalid.error}")
     out.mkdir(parents=True, exist_ok=True)
 
     summaries: dict[str, dict] = {}
     t0 = time.perf_counter()
-
-    def done(direction: str, summary: dict) -> None:
-        summaries[direction] = summary
+    for case, folder, error, _ in run_cases(
+        study.cases, lambda c: out / folder_name(run_of[c.case_id]), workers=n_workers,
+        reuse=False,
+    ):
+        direction = run_of[case.case_id]
+        if error:
+            raise RuntimeError(f"compare: the run built along {_label(direction)} failed: {error}")
+        summary = summaries[direction] = read_summary(folder)
         if progress:
             print(
                 f"compare: {_label(direction):>4} done: compliance {summary['compliance']:.6g}, "
@@ -213,33 +211,11 @@ def compare(
                 flush=True,
             )
 
-    jobs = [
-        (d, dict(variants[d].source), variants[d].path, str(out / folder_name(d))) for d in runs
-    ]
-    if n_workers == 1:
-        for d, source, path, folder in jobs:
-            done(d, _run_one(source, path, folder))
-    else:
-        from topopt.parallel import process_map
-
-        for d, summary, error in process_map(
-            _run_one_single_thread, [(job[0], job[1:], {}) for job in jobs], workers=n_workers
-        ):
-            if error is not None:
-                raise error
-            done(d, summary)
-
-    densities = {d: _load_density(out / folder_name(d)) for d in runs}  # keys: run order
+    densities = {d: read_density(out / folder_name(d)) for d in runs}  # keys: run order
     rows = comparison_rows(runs, summaries, densities, problem)
     write_csv(out / "comparison.csv", rows, COLUMNS)
     plot_comparison(rows, densities, problem, out / "comparison.png")
     return rows
-
-
-def _load_density(folder: Path) -> np.ndarray:
-    from topopt.results import read_arrays
-
-    return read_arrays(folder / "result.npz", ["density"])["density"]
 
 
 def comparison_rows(runs, summaries: dict, densities: dict, problem) -> list[dict]:

@@ -23,7 +23,7 @@ def elasticity_matrix(dim: int, *, youngs_modulus: float, poisson_ratio: float) 
 
     Examples
     --------
-    >>> elasticity_matrix(2, youngs_modulus=1.0, poisson_ratio=0.0)[2, 2]
+    >>> float(elasticity_matrix(2, youngs_modulus=1.0, poisson_ratio=0.0)[2, 2])
     0.5
     """
     E, nu = float(youngs_modulus), float(poisson_ratio)

@@ -12,39 +12,17 @@ import csv
 import io
 import json
 import os
-import tempfile
 from collections.abc import Callable, Iterable
 from pathlib import Path
 
 import numpy as np
 
+from topopt.files import atomic_write  # noqa: F401 - re-exported: writers import it from here
+
 CAUTION = (
     "Results are a design aid: verify the final part with a full analysis and physical "
     "tests, and defer to applicable codes, standards and licensed engineering practice."
 )
-
-
-def atomic_write(path: str | Path, write: Callable[[io.BufferedWriter], None]) -> None:
-    """Write a file by calling ``write(handle)`` on a temporary file, then rename it."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            write(handle)
-        # mkstemp creates the file private (0600); results are ordinary files
-        os.chmod(tmp, 0o666 & ~_umask())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
 
 
 def write_text(path: str | Path, text: str) -> None:

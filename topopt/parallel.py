@@ -100,7 +100,8 @@ def process_map(
 
     Examples
     --------
-    >>> # for key, value, error in process_map(pow, [("a", (2, 3), {})], workers=1): ...
+    >>> list(process_map(pow, [("a", (2, 3), {}), ("b", (2, 0.5), {})], workers=1))
+    [('a', 8, None), ('b', 1.4142135623730951, None)]
     """
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor, as_completed

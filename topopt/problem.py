@@ -1070,7 +1070,10 @@ def with_settings(problem: Problem, settings: Mapping[str, Any]) -> Problem:
 
     Examples
     --------
-    >>> # with_settings(p, {"build.direction": "+y", "optimize.volume_fraction": 0.3})
+    >>> p = load_problem("examples/mbb-beam.toml")
+    >>> q = with_settings(p, {"build.direction": "+y", "optimize.volume_fraction": 0.3})
+    >>> q.build.direction, q.optimize.volume_fraction, p.optimize.volume_fraction
+    ('+y', 0.3, 0.5)
     """
     data = copy.deepcopy(dict(problem.source))
     for dotted, value in settings.items():

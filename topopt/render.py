@@ -241,7 +241,7 @@ def write_print_views(
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from topopt.export import atomic_write
+    from topopt.files import atomic_write
 
     directions = list(directions)[:4]
     titles = list(titles) if titles is not None else [str(d) for d in directions]

@@ -298,8 +298,8 @@ def write_results(result, problem, out_dir: str | Path, *,
 
 def summary_dict(result, problem) -> dict:
     """The ``summary.json`` contents: the result's own metrics plus the problem's labels."""
-    from topopt import __version__
     from topopt.export import CAUTION
+    from topopt.version import __version__
 
     metrics = result_metrics(result, problem)
     summary = {

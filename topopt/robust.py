@@ -39,7 +39,11 @@ def thresholds(problem) -> tuple[float, ...]:
 
     Examples
     --------
-    >>> # thresholds(problem) -> (0.75, 0.5, 0.25) with min_member_size and delta 0.25
+    >>> from topopt.problem import load_problem
+    >>> thresholds(load_problem("examples/mbb-beam.toml"))
+    ()
+    >>> thresholds(load_problem("examples/mbb-beam-crisp.toml"))  # min_member_size, delta 0.25
+    (0.75, 0.5, 0.25)
     """
     settings = projection_settings(problem)
     if settings is None:

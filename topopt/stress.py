@@ -52,7 +52,7 @@ def element_strains(grid, displacements: np.ndarray) -> np.ndarray:
     --------
     >>> from topopt.grid import Grid
     >>> g = Grid((1, 1), 1.0)
-    >>> u = np.array([0.0, 0.0, 0.1, 0.0, 0.1, 0.0, 0.0, 0.0])  # stretch along x
+    >>> u = np.array([0.0, 0.0, 0.0, 0.0, 0.1, 0.0, 0.1, 0.0])  # nodes at x = 1 move: stretch along x
     >>> np.round(element_strains(g, u)[0, :, 0], 12).tolist()
     [0.1, 0.0, 0.0]
     """

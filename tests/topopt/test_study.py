@@ -274,16 +274,6 @@ def test_non_dominated_cases():
     assert flags == [True, True, False, True, True]
 
 
-def test_plot_says_so_when_support_volume_is_missing(tmp_path, monkeypatch):
-    # Without the print-preparation module the figures stay blank and the run still ends
-    # in a table and a picture.
-    monkeypatch.setitem(sys.modules, "topopt.build", None)
-    path = write_study(tmp_path, {"optimize.volume_fraction": [0.4, 0.5]}, iterations=5)
-    rows = study.run(path, out_dir=tmp_path / "out", workers=1)
-    assert all(r["support_volume"] is None and r["build_time_h"] is None for r in rows)
-    assert (tmp_path / "out" / "study.png").stat().st_size > 0
-
-
 def test_bundled_overhang_study_is_valid_and_runs_on_a_coarse_grid(tmp_path):
     import tomllib
 

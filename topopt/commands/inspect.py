@@ -17,10 +17,10 @@ import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import numpy as np
-
-from topopt.export import CAUTION  # the one caution text
+if TYPE_CHECKING:  # numpy is imported inside the functions: building the command line's
+    import numpy as np  # parser (`buttress --help`) must not load it
 
 HELP = "check a design for overhangs, supports, trapped powder, build time and cost"
 ESTIMATES_NOTE = ("Build time and cost are first-order estimates: confirm them, and the supports, "
@@ -115,55 +115,17 @@ def parse_weights(text: str) -> dict[str, float]:
     return weights
 
 
-def parse_directions(text: str | None, ndim: int) -> list | None:
-    """Split ``"+x,-x,0 1 1"`` into axis names and vectors, checked for the dimension.
-
-    Examples
-    --------
-    >>> parse_directions("+y, -y", 2)
-    ['+y', '-y']
-    >>> parse_directions("+z, 0 1 1", 3)
-    ['+z', [0.0, 1.0, 1.0]]
-    """
-    from filters.direction import direction_label, unit_vector
-
-    if text is None:
-        return None
-    out: list = []
-    for entry in (e.strip() for e in str(text).split(",")):
-        if not entry:
-            continue
-        parts = entry.split()
-        if len(parts) == 1 and parts[0][:1] in "+-" and parts[0][1:] in ("x", "y", "z"):
-            value = parts[0]
-        else:
-            try:
-                value = [float(v) for v in parts]
-            except ValueError:
-                raise ValueError(f"--directions: {entry!r} is neither an axis name such as +z "
-                                 "nor a vector of numbers such as '0 1 1'") from None
-        try:
-            unit_vector(value, ndim)
-        except ValueError as exc:
-            raise ValueError(f"--directions: {entry!r}: {exc}") from None
-        out.append(value)
-    if not out:
-        raise ValueError("--directions: give at least one direction, e.g. --directions +z,-z")
-    labels = [direction_label(d, ndim) for d in out]
-    if len(set(labels)) != len(labels):
-        raise ValueError(f"--directions: each direction may appear once, got {' '.join(labels)}")
-    return out
-
-
 def refine_directions(vector, radius_deg: float, count: int, ndim: int) -> list:
     """``count`` unit vectors spread over the cap of ``radius_deg`` around ``vector``.
 
     Examples
     --------
     >>> v = refine_directions([0.0, 0.0, 1.0], 10.0, 20, 3)
-    >>> len(v), bool(min(p[2] for p in v) >= np.cos(np.radians(10.0)) - 1e-12)
+    >>> len(v), bool(min(p[2] for p in v) >= math.cos(math.radians(10.0)) - 1e-12)
     (20, True)
     """
+    import numpy as np
+
     from filters.direction import unit_vector
 
     d = unit_vector(list(vector), ndim)
@@ -200,6 +162,7 @@ def flat_face_directions(density: np.ndarray, candidates: list, count: int = 3) 
     directions to find: a face tilted by the spread's spacing already needs a wedge of
     support under it.
     """
+    import numpy as np
     from scipy import ndimage
 
     from filters.direction import unit_vector
@@ -301,6 +264,8 @@ def search_directions(count: int, ndim: int) -> list:
 
 def _load_array(path: Path) -> np.ndarray:
     """The density array of a .npy / .npz file (headers checked before reading)."""
+    import numpy as np
+
     from topopt.results import read_arrays
 
     arrays = read_arrays(path)
@@ -437,8 +402,10 @@ def _positive(value: float, name: str) -> float:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``buttress inspect``."""
+    from filters.direction import parse_directions
     from filters.printability import enforced_overhang_angle
     from topopt.build import REPORT_FIELDS, analyze_design
+    from topopt.export import CAUTION  # the one caution text
 
     out = Path(args.out)
     if out.exists() and not out.is_dir():
@@ -517,6 +484,7 @@ def _length_unit(design: LoadedDesign) -> str:
 
 def _write_print_views(path: Path, design: LoadedDesign, reports) -> None:
     """inspect-3d.png: the three best-ranked directions seen from the side and from below."""
+    from topopt.export import CAUTION  # the one caution text
     from topopt.render import write_print_views
 
     top = sorted(reports, key=lambda r: r.rank)[:3]
@@ -540,6 +508,7 @@ def _cell(value: float, width: int) -> str:
 
 
 def _print_table(reports, best: str, no_mass: bool) -> None:
+    from topopt.export import CAUTION  # the one caution text
     print(f"{'direction':>24} {'height':>8} {'layers':>6} {'overhang':>9} {'support':>9} "
           f"{'unremov.':>9} {'trapped':>9} {'time_h':>7} {'cost':>9} {'score':>6} {'rank':>4}")
     for r in reports:
@@ -583,6 +552,8 @@ _COLOURS = {
 
 def _panel_image(masks, direction: str) -> np.ndarray:
     """RGB image in the build frame (rows = layers from the plate, columns = across)."""
+    import numpy as np
+
     from topopt.build import first_occupied_layer, to_build_frame
 
     # the analysis places the part on the plate; so does the picture
@@ -613,6 +584,8 @@ def _panel_image(masks, direction: str) -> np.ndarray:
 
 def _tilted_panel_image(masks) -> np.ndarray:
     """RGB image of a tilted build in the design's own frame (3D: seen along z)."""
+    import numpy as np
+
 
     def flat(a: np.ndarray) -> np.ndarray:
         b = a.any(axis=-1) if a.ndim == 3 else a
@@ -659,6 +632,8 @@ def _draw_panel(ax, r, m, element_size: float, best: str) -> None:
 
 def _draw_map(ax, reports, best: str) -> None:
     """Every searched direction at a glance: support volume (colour), build time (size)."""
+    import numpy as np
+
     ndim = len(reports[0].vector)
     v = np.array([r.vector for r in reports])
     support = np.array([r.support_volume for r in reports])
@@ -694,6 +669,9 @@ def write_inspect_png(path, reports, masks, *, best: str, element_size: float,
     """Panels per direction (build direction up, plate at the bottom) and bar charts; for
     an orientation search, a map of every direction beside the best ones' panels."""
     import matplotlib
+    import numpy as np
+
+    from topopt.export import CAUTION  # the one caution text
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt

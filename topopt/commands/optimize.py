@@ -13,8 +13,8 @@ import hashlib
 import sys
 from pathlib import Path
 
-from topopt.problem import load_problem
-from topopt.results import CHECKPOINT, load_checkpoint, save_checkpoint
+# numpy and the solver stack are imported inside the functions: building the command
+# line's parser (`buttress --help`) must not load them.
 
 HELP = "optimise a problem file into a results folder"
 
@@ -41,8 +41,16 @@ def problem_digest(problem) -> str:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``buttress optimize``."""
-    from topopt import optimize
-    from topopt.results import folder_lock, prepare_output, write_results
+    from topopt.driver import optimize
+    from topopt.problem import load_problem
+    from topopt.results import (
+        CHECKPOINT,
+        folder_lock,
+        load_checkpoint,
+        prepare_output,
+        save_checkpoint,
+        write_results,
+    )
 
     problem = load_problem(args.problem)  # validate (and budget memory) before the folder
     if args.solver is not None:

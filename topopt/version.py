@@ -1,0 +1,3 @@
+"""The version of buttress: the one place it is written (``pyproject.toml`` reads it)."""
+
+__version__ = "0.1.0"
