@@ -30,7 +30,8 @@ PACKAGES = ("filters", "topopt")
 LAYERS: list[tuple[str, tuple[str, ...]]] = [
     ("array transforms", ("filters.chain", "filters.density", "filters.projection",
                           "filters.direction", "filters.printability", "filters")),
-    ("foundation", ("topopt.version", "topopt.files", "topopt.grid", "topopt.parallel")),
+    ("foundation", ("topopt.version", "topopt.files", "topopt.grid", "topopt.parallel",
+                    "topopt.interrupt", "topopt.memory")),
     ("finite elements", ("topopt.elements", "topopt.assembly", "topopt.multigrid",
                          "topopt.solvers")),
     ("model", ("topopt.problem", "topopt.objective", "topopt.optimizers", "topopt.robust")),
@@ -38,6 +39,7 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     ("analysis and output", ("topopt.lengthscale", "topopt.stress", "topopt.tilted",
                              "topopt.build", "topopt.surface", "topopt.render",
                              "topopt.export")),
+    ("results folder", ("topopt.results",)),
     ("studies", ("topopt.study", "topopt.compare")),
     ("command line", ("topopt.commands", "topopt.commands.compare", "topopt.commands.export",
                       "topopt.commands.inspect", "topopt.commands.optimize",

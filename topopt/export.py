@@ -71,13 +71,6 @@ def write_npz(path: str | Path, **arrays: np.ndarray) -> None:
     atomic_write(path, lambda h: np.savez(h, **{k: np.asarray(v) for k, v in arrays.items()}))
 
 
-def summary_dict(result, problem) -> dict:
-    """The ``summary.json`` contents for a result of ``problem`` (see :mod:`topopt.results`)."""
-    from topopt.results import summary_dict as _summary
-
-    return _summary(result, problem)
-
-
 def structural_summary_of(density: np.ndarray, problem) -> dict:
     """Per load case displacements at the loads and von Mises stresses, and the mass.
 
@@ -170,13 +163,6 @@ def history_columns(history: Iterable[dict]) -> list[str]:
             if k not in columns:
                 columns.append(k)
     return columns
-
-
-def write_results(result, problem, out_dir: str | Path, *, formats: Iterable[str] | None = None) -> Path:
-    """Write the results folder of a run as one unit (see :func:`topopt.results.write_results`)."""
-    from topopt.results import write_results as _write
-
-    return _write(result, problem, out_dir, formats=formats)
 
 
 def write_png(path: str | Path, density: np.ndarray, problem) -> None:

@@ -588,7 +588,8 @@ def run_cases(
         ran now (``False`` for invalid and reused cases). Each case's ``problem.toml`` is
         written before it runs, so any case can be rerun by hand.
     """
-    from topopt.export import write_results, write_text
+    from topopt.export import write_text
+    from topopt.results import write_results
     from topopt.problem import to_toml
 
     cases = list(cases)

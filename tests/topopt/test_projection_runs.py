@@ -24,7 +24,7 @@ import pytest
 
 from topopt import load_problem, optimize
 from topopt.driver import build_filter_chain
-from topopt.export import summary_dict, write_results
+from topopt.results import summary_dict, write_results
 from topopt.lengthscale import minimum_member_size
 from topopt.objective import ComplianceModel
 from topopt.problem import ProblemError, problem_from_dict
