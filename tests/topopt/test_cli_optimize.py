@@ -28,7 +28,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-import topopt.commands.optimize as optimize_command
+import topopt.results as optimize_command  # run() takes save_checkpoint from here
 from topopt.cli import main
 
 ROOT = Path(__file__).resolve().parents[2]

@@ -378,7 +378,7 @@ def test_robust_run_in_3d():
 def test_resume_through_the_checkpoint_file(tmp_path):
     # the loop state of a projection + robust MMA run survives the .npz checkpoint of
     # `buttress optimize` (plain arrays, no pickle) and the resumed run repeats the full one
-    from topopt.commands.optimize import load_checkpoint, save_checkpoint
+    from topopt.results import load_checkpoint, save_checkpoint
 
     data = _coarse_mbb(
         method="mma",

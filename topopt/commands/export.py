@@ -30,6 +30,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``buttress export``."""
+    import numpy as np
+
     from topopt.export import WRITERS
     from topopt.results import read_results
     from topopt.surface import write_design_stl

@@ -383,6 +383,8 @@ def _check_analysis_memory(voxels: int, what: str) -> None:
 
 def _check_voxel_count(path: Path, vertices: np.ndarray, element_size: float) -> None:
     """Refuse before voxelising when the grid would be too large (counted exactly)."""
+    import numpy as np
+
     with np.errstate(over="ignore", invalid="ignore"):
         cells = (vertices.max(axis=0) - vertices.min(axis=0)) / element_size
     if not np.all(np.isfinite(cells)) or cells.max() > 1e12:
