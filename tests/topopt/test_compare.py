@@ -235,12 +235,14 @@ def test_bracket_comparison_equals_separate_runs(tmp_path):
     rows = compare(problem, directions=["-x", "+y"], out_dir=tmp_path / "cmp", workers=1)
     assert [r["direction"] for r in rows] == ["none", "-x", "+y"]
     for r in rows:
-        # the variant: the direction, and for every run the projection continuation a
-        # built run gets by default (compare gives it to the free design too)
+        # the variant: the direction, and for every run the projection continuation and
+        # the optimiser (MMA) a built run gets by default (compare gives them to the free
+        # design too)
         variant = with_settings(problem, {"build.direction": r["direction"]})
         if variant.optimize.projection is None:
             variant = with_settings(variant, {"optimize.projection": {
-                "every": DEFAULT_BETA_EVERY, "beta_max": DEFAULT_BETA_MAX}})
+                "every": DEFAULT_BETA_EVERY, "beta_max": DEFAULT_BETA_MAX},
+                "optimize.method": "mma"})
         alone = optimize(variant)
         assert r["compliance"] == pytest.approx(alone.compliance, rel=1e-9), r["direction"]
         assert r["iterations"] == alone.iterations
