@@ -356,6 +356,15 @@ def _locate(e, m, shape, d, plate):  # noqa: D103 - kernel
 
 
 @numba.njit(cache=True)
+def _place(e, t, inner, mflat, members, shape, d, plate):  # noqa: D103 - kernel
+    # _locate of member t, with a fast path for elements whose whole stencil lies
+    # inside the domain and above the plate (flat offsets, no divisions)
+    if inner[e]:
+        return e + mflat[t], 0.0
+    return _locate(e, members[t], shape, d, plate)
+
+
+@numba.njit(cache=True)
 def _power(r, p, p_int):  # noqa: D103 - kernel
     # r**p; integer exponents (the default P = 40) by repeated squaring, several times
     # faster than the general pow, which dominates the cost of the filter
@@ -379,7 +388,8 @@ def _smin(a, b, eps, sq):  # noqa: D103 - kernel
 
 
 @numba.njit(cache=True)
-def _logical_sweep(solid, order, on_plate, shape, d, plate, members, starts, printed_only):  # noqa: D103
+def _logical_sweep(solid, order, on_plate, inner, mflat, shape, d, plate, members, starts,  # noqa: D103
+                   printed_only):
     out = np.zeros(solid.size, dtype=np.bool_)
     n_s = starts.size - 1
     for e in order:
@@ -392,7 +402,7 @@ def _logical_sweep(solid, order, on_plate, shape, d, plate, members, starts, pri
         for s in range(n_s):
             ok = True
             for t in range(starts[s], starts[s + 1]):
-                idx, under = _locate(e, members[t], shape, d, plate)
+                idx, under = _place(e, t, inner, mflat, members, shape, d, plate)
                 if idx < 0:
                     ok = under > 0.5
                 else:
@@ -407,7 +417,7 @@ def _logical_sweep(solid, order, on_plate, shape, d, plate, members, starts, pri
 
 
 @numba.njit(cache=True)
-def _forward_kernel(x, keep, hold, order, on_plate, shape, d, plate, members, starts,
+def _forward_kernel(x, keep, hold, order, on_plate, inner, mflat, shape, d, plate, members, starts,
                     eps, p, p_int, q, xi, big, top, psum):  # noqa: D103
     # Stores per element the smooth maximum (big), its largest input (top) and the
     # scaled P-sum (psum), so that the backward sweep needs no second maximum.
@@ -425,7 +435,7 @@ def _forward_kernel(x, keep, hold, order, on_plate, shape, d, plate, members, st
         for s in range(n_s):
             v = 1.0
             for t in range(starts[s], starts[s + 1]):
-                idx, under = _locate(e, members[t], shape, d, plate)
+                idx, under = _place(e, t, inner, mflat, members, shape, d, plate)
                 w = xi[idx] if idx >= 0 else under
                 v = w if t == starts[s] else _smin(v, w, eps, sq)
             vals[s] = v
@@ -449,7 +459,8 @@ def _forward_kernel(x, keep, hold, order, on_plate, shape, d, plate, members, st
 
 
 @numba.njit(cache=True)
-def _backward_kernel(x, keep, hold, order, on_plate, shape, d, plate, members, starts,
+def _backward_kernel(x, keep, hold, order, on_plate, inner, mflat, shape, d, plate, members,
+                     starts,
                      eps, p, p_int, q, xi, big, top, psum, lam, dx):  # noqa: D103
     # lam enters as the seed (adjoint of xi) and is completed in falling height
     sq = math.sqrt(eps)
@@ -478,7 +489,7 @@ def _backward_kernel(x, keep, hold, order, on_plate, shape, d, plate, members, s
             length = starts[s + 1] - starts[s]
             v = 1.0
             for u in range(length):
-                idx, under = _locate(e, members[starts[s] + u], shape, d, plate)
+                idx, under = _place(e, starts[s] + u, inner, mflat, members, shape, d, plate)
                 w = xi[idx] if idx >= 0 else under
                 where[u] = idx
                 v = w if u == 0 else _smin(v, w, eps, sq)
@@ -512,6 +523,8 @@ class _Sweep:
     order: np.ndarray  # flat indices by rising height
     on_plate: np.ndarray  # flat, bool
     plate: float
+    inner: np.ndarray  # flat, bool: the whole stencil inside the domain and above the plate
+    mflat: np.ndarray  # flat-index offset of every strut member
 
 
 def _sweep_setup(shape, direction, overhang_angle, plate_offset: float = 0.0) -> _Sweep:
@@ -522,12 +535,23 @@ def _sweep_setup(shape, direction, overhang_angle, plate_offset: float = 0.0) ->
     heights = element_heights(shape, d[:ndim]).ravel()
     plate = plate_level(shape, d[:ndim], plate_offset)
     lowest = heights - 0.5 * float(np.abs(d).sum())
+    shape3 = np.array(shape + (1,) * (3 - ndim), dtype=np.int64)
+    m = stencil.members
+    inner = np.ones(shape3, dtype=bool)
+    if m.size:
+        idx = np.indices(tuple(shape3))
+        for a in range(3):
+            inner &= (idx[a] + m[:, a].min() >= 0) & (idx[a] + m[:, a].max() < shape3[a])
+        inner = inner.ravel() & (heights + float((m @ d).min()) > plate + 1e-9)
+    mflat = (m[:, 0] * shape3[1] * shape3[2] + m[:, 1] * shape3[2] + m[:, 2]).astype(np.int64)
     return _Sweep(
-        shape3=np.array(shape + (1,) * (3 - ndim), dtype=np.int64),
+        shape3=shape3,
         stencil=stencil,
         order=np.argsort(heights, kind="stable").astype(np.int64),
         on_plate=lowest <= plate + 1e-9,
         plate=plate,
+        inner=np.ascontiguousarray(inner.ravel()),
+        mflat=mflat,
     )
 
 
@@ -589,7 +613,8 @@ class PrintabilityFilter:
     def _args(self):
         sw = self._sweep
         st = sw.stencil
-        return (self._keep, self.keep_mode == "hold", sw.order, sw.on_plate, sw.shape3,
+        return (self._keep, self.keep_mode == "hold", sw.order, sw.on_plate, sw.inner, sw.mflat,
+                sw.shape3,
                 st.direction, sw.plate, st.members, st.starts, self.epsilon, self.p,
                 self._p_int, self.q)
 
@@ -729,7 +754,8 @@ def _logical(solid, direction, overhang_angle, plate_offset, *, printed_only):
         raise ValueError(f"solid must have 2 or 3 axes, got {arr.ndim}")
     sw = _sweep_setup(arr.shape, direction, overhang_angle, plate_offset)
     st = sw.stencil
-    out = _logical_sweep(np.ascontiguousarray(arr.ravel()), sw.order, sw.on_plate, sw.shape3,
+    out = _logical_sweep(np.ascontiguousarray(arr.ravel()), sw.order, sw.on_plate, sw.inner,
+                         sw.mflat, sw.shape3,
                          st.direction, sw.plate, st.members, st.starts, printed_only)
     return out.reshape(arr.shape)
 
