@@ -127,7 +127,7 @@ def direction_label(direction, ndim: int) -> str:
 def element_heights(shape: Sequence[int], d: np.ndarray) -> np.ndarray:
     """Height of every element centre along the unit direction ``d``, element units."""
     grids = np.meshgrid(*[np.arange(n) + 0.5 for n in shape], indexing="ij")
-    return sum(g * float(c) for g, c in zip(grids, d))
+    return sum(g * float(c) for g, c in zip(grids, d, strict=True))
 
 
 def plate_level(shape: Sequence[int], d: np.ndarray, offset: float = 0.0) -> float:
@@ -140,7 +140,7 @@ def plate_level(shape: Sequence[int], d: np.ndarray, offset: float = 0.0) -> flo
     >>> plate_level((4, 3), np.array([0.0, -1.0]))
     -3.0
     """
-    low = sum(min(0.0, float(n) * float(c)) for n, c in zip(shape, d))
+    low = sum(min(0.0, float(n) * float(c)) for n, c in zip(shape, d, strict=True))
     return low + float(offset)
 
 

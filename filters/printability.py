@@ -140,8 +140,9 @@ class Stencil:
 
 
 def _strut(o: np.ndarray, d: np.ndarray) -> list[tuple[int, ...]] | None:
-    """Members of the strut of offset ``o``: its foot, then one element per unit of depth
-    on the way up; None when a member would not lie below the element held.
+    """Members of the strut of offset ``o``: its foot, then one per unit of depth upwards.
+
+    None when a member would not lie below the element held.
 
     Each sample point of the line from the foot to the element held is taken to the
     corner element of its cell that lies furthest towards the inside of a surface

@@ -329,8 +329,11 @@ def plot_comparison(rows: list[dict], densities: dict, problem, path: str | Path
 
 
 def _draw_plate_2d(ax, direction, size) -> None:
-    """Draw a thick orange bar along the side where the build plate lies (an arrow along
-    the build direction from the plate's corner for a tilted direction)."""
+    """Draw a thick orange bar along the side where the build plate lies.
+
+    For a tilted direction: the plate's line through the corner and an arrow along the
+    build direction.
+    """
     if isinstance(direction, str) and direction == "none":
         return
     if not isinstance(direction, str):
@@ -367,8 +370,10 @@ def _plate_rectangle(xy, width, height):
 
 
 def _draw_plate_3d(ax, direction, size) -> None:
-    """Draw a translucent orange square on the plate face of the box (an arrow along a
-    tilted build direction from the domain's lowest corner)."""
+    """Draw a translucent orange square on the plate face of the box.
+
+    For a tilted direction: an arrow along it from the domain's lowest corner.
+    """
     if isinstance(direction, str) and direction == "none":
         return
     if not isinstance(direction, str):

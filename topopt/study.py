@@ -589,8 +589,8 @@ def run_cases(
         written before it runs, so any case can be rerun by hand.
     """
     from topopt.export import write_text
-    from topopt.results import write_results
     from topopt.problem import to_toml
+    from topopt.results import write_results
 
     cases = list(cases)
     pending: list[Case] = []

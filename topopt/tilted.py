@@ -132,14 +132,14 @@ def tilted_masks(solid: np.ndarray, direction, overhang_angle: float, accessible
     half = 0.5 * float(np.abs(d).sum())
     low = float(heights[solid].min()) - half
     high = float(heights[solid].max()) + half
-    corner = sum(min(0.0, float(n) * float(c)) for n, c in zip(solid.shape, d))
+    corner = sum(min(0.0, float(n) * float(c)) for n, c in zip(solid.shape, d, strict=True))
     plate = low
     supported = supported_mask(solid, direction=d.tolist(), overhang_angle=overhang_angle,
                                plate_offset=max(0.0, low - corner))
     step = lower_neighbour_step(d)
     below = np.zeros_like(solid)
-    src = tuple(slice(max(0, -s), n - max(0, s)) for s, n in zip(step, solid.shape))
-    dst = tuple(slice(max(0, s), n - max(0, -s)) for s, n in zip(step, solid.shape))
+    src = tuple(slice(max(0, -s), n - max(0, s)) for s, n in zip(step, solid.shape, strict=True))
+    dst = tuple(slice(max(0, s), n - max(0, -s)) for s, n in zip(step, solid.shape, strict=True))
     below[src] = solid[dst]
     lowest = heights - half <= plate + 1e-9
     down = solid & ~below & ~lowest

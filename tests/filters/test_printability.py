@@ -16,12 +16,12 @@ import numpy as np
 import pytest
 
 from filters.printability import (
-    support_stencil,
     DIRECTIONS,
     enforced_overhang_angle,
     overhang_area,
     printability_filter,
     printable_part,
+    support_stencil,
     supported_mask,
     unsupported_count,
 )

@@ -24,10 +24,10 @@ import pytest
 
 from topopt import load_problem, optimize
 from topopt.driver import build_filter_chain
-from topopt.results import summary_dict, write_results
 from topopt.lengthscale import minimum_member_size
 from topopt.objective import ComplianceModel
 from topopt.problem import ProblemError, problem_from_dict
+from topopt.results import summary_dict, write_results
 
 EXAMPLES = Path(__file__).resolve().parents[2] / "examples"
 MBB = EXAMPLES / "mbb-beam.toml"

@@ -157,10 +157,10 @@ def flat_face_directions(density: np.ndarray, candidates: list, count: int = 3) 
     Surface normals come from the gradient of the Gaussian-smoothed voxels (width one
     voxel). For each candidate direction ``v`` the surface whose outward normal lies
     within 10 degrees of ``-v`` is summed; the ``count`` largest such groups give the
-    directions opposite their mean normal (re-centred within 5, 3 and 2 degrees). A flat face is the usual best seat on the
-    plate (common practice), and such a minimum is too sharp for an even spread of
-    directions to find: a face tilted by the spread's spacing already needs a wedge of
-    support under it.
+    directions opposite their mean normal (re-centred within 5, 3 and 2 degrees). A flat
+    face is the usual best seat on the plate (common practice), and such a minimum is too
+    sharp for an even spread of directions to find: a face tilted by the spread's spacing
+    already needs a wedge of support under it.
     """
     import numpy as np
     from scipy import ndimage
@@ -203,9 +203,10 @@ def flat_face_directions(density: np.ndarray, candidates: list, count: int = 3) 
 
 
 def orientation_search(density: np.ndarray, count: int, settings: dict) -> tuple[list, list]:
-    """Directions of an orientation search: the axes, ``count`` directions spread evenly,
-    the directions that seat the largest flat faces on the plate, then a finer look
-    around the three best (a cap as wide as the spread's spacing).
+    """Directions and reports of an orientation search.
+
+    The axes, ``count`` directions spread evenly, the directions that seat the largest
+    flat faces on the plate, then finer and finer caps around the best.
     """
     from filters.direction import direction_label
     from topopt.build import analyze_design
@@ -668,8 +669,10 @@ def _draw_map(ax, reports, best: str) -> None:
 
 def write_inspect_png(path, reports, masks, *, best: str, element_size: float,
                       length_unit: str = "") -> None:
-    """Panels per direction (build direction up, plate at the bottom) and bar charts; for
-    an orientation search, a map of every direction beside the best ones' panels."""
+    """Panels per direction (build direction up, plate at the bottom) and bar charts.
+
+    For an orientation search: a map of every direction beside the best ones' panels.
+    """
     import matplotlib
     import numpy as np
 
