@@ -23,6 +23,7 @@ __all__ = [
     "axis_directions",
     "direction_label",
     "element_heights",
+    "lateral_frame",
     "parse_directions",
     "plate_level",
     "spread_directions",
@@ -122,6 +123,21 @@ def direction_label(direction, ndim: int) -> str:
         if np.allclose(vec, unit_vector(name, ndim), atol=1e-12, rtol=0):
             return name
     return "[" + ", ".join(f"{v:.4g}" if abs(v) >= 1e-12 else "0" for v in vec) + "]"
+
+
+def lateral_frame(d: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Two unit vectors that with the 3D unit vector ``d`` make a right-handed frame.
+
+    Examples
+    --------
+    >>> e1, e2 = lateral_frame(np.array([0.0, 0.0, 1.0]))
+    >>> [round(float(v), 12) + 0.0 for v in (e1 @ e2, e1 @ [0, 0, 1], e2 @ [0, 0, 1])]
+    [0.0, 0.0, 0.0]
+    """
+    helper = np.array([1.0, 0.0, 0.0]) if abs(d[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    e1 = np.cross(d, helper)
+    e1 /= np.linalg.norm(e1)
+    return e1, np.cross(d, e1)
 
 
 def element_heights(shape: Sequence[int], d: np.ndarray) -> np.ndarray:

@@ -66,7 +66,7 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from filters.direction import AXIS_NAMES, element_heights, plate_level, unit_vector
+from filters.direction import AXIS_NAMES, element_heights, lateral_frame, plate_level, unit_vector
 
 __all__ = [
     "ANGLE_RANGE",
@@ -180,10 +180,7 @@ def _lateral_directions(d: np.ndarray, ndim: int) -> np.ndarray:
     if ndim == 2:
         side = np.array([-d[1], d[0], 0.0])
         return np.array([side, -side])
-    helper = np.array([1.0, 0.0, 0.0]) if abs(d[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    e1 = np.cross(d, helper)
-    e1 /= np.linalg.norm(e1)
-    e2 = np.cross(d, e1)
+    e1, e2 = lateral_frame(d)
     t = np.linspace(0.0, 2.0 * math.pi, _AZIMUTHS, endpoint=False)
     return np.cos(t)[:, None] * e1 + np.sin(t)[:, None] * e2
 

@@ -126,7 +126,7 @@ def refine_directions(vector, radius_deg: float, count: int, ndim: int) -> list:
     """
     import numpy as np
 
-    from filters.direction import unit_vector
+    from filters.direction import lateral_frame, unit_vector
 
     d = unit_vector(list(vector), ndim)
     r = math.radians(radius_deg)
@@ -136,10 +136,7 @@ def refine_directions(vector, radius_deg: float, count: int, ndim: int) -> list:
             c, s = math.cos(t), math.sin(t)
             out.append([c * d[0] - s * d[1], s * d[0] + c * d[1]])
         return out
-    helper = np.array([1.0, 0.0, 0.0]) if abs(d[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    e1 = np.cross(d, helper)
-    e1 /= np.linalg.norm(e1)
-    e2 = np.cross(d, e1)
+    e1, e2 = lateral_frame(d)
     out = []
     for k in range(count):
         # equal-area spiral over the cap (golden angle around the axis)
