@@ -39,6 +39,8 @@ def _columns(needs, solid, accessible, shape, d, plate, start_heights, support, 
     total = 0.0
     plate_len = 0.0
     stuck = 0.0
+    # a column visits at most one cell per sample along the domain's diagonal
+    cells = np.empty(int(4.0 / _STEP * (n0 + n1 + n2)) + 8, dtype=np.int64)
     for e in range(needs.size):
         if not needs[e]:
             continue
@@ -51,8 +53,7 @@ def _columns(needs, solid, accessible, shape, d, plate, start_heights, support, 
         visited_len = 0.0
         visited_stuck = 0.0
         reached_plate = False
-        # cells of this column (to mark them as standing on the plate at the end)
-        first = -1
+        count = 0  # the column's cells, kept to mark them if it reaches the plate
         while True:
             px, py, pz = cx - t * d[0], cy - t * d[1], cz - t * d[2]
             h = s0 - t
@@ -71,8 +72,8 @@ def _columns(needs, solid, accessible, shape, d, plate, start_heights, support, 
                 if solid[c]:
                     break
                 support[c] = True
-                if first < 0:
-                    first = c
+                cells[count] = c
+                count += 1
                 visited_len += _STEP
                 if not accessible[c]:
                     visited_stuck += _STEP
@@ -81,21 +82,8 @@ def _columns(needs, solid, accessible, shape, d, plate, start_heights, support, 
         stuck += visited_stuck
         if reached_plate:
             plate_len += visited_len
-            # mark the column's cells as standing on the plate
-            t = 0.5
-            while True:
-                px, py, pz = cx - t * d[0], cy - t * d[1], cz - t * d[2]
-                if s0 - t <= plate:
-                    break
-                i = int(math.floor(px))
-                j = int(math.floor(py))
-                k = int(math.floor(pz))
-                if i < 0 or i >= n0 or j < 0 or j >= n1 or k < 0 or k >= n2:
-                    break
-                c = (i * n1 + j) * n2 + k
-                if c != e:
-                    on_plate_cells[c] = True
-                t += _STEP
+            for n in range(count):
+                on_plate_cells[cells[n]] = True
     return total, plate_len, stuck
 
 
