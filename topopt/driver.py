@@ -237,7 +237,7 @@ def optimize(
                                       n_designs=len(chains), move=move_limit,
                                       extra_constraints=int(keep_in is not None))
 
-    damping = MoveDamping(move_limit, floor=settings.change_tolerance)
+    damping = MoveDamping(move_limit, problem.grid.shape)
     x = initial_design(problem)
     history: list[dict] = []
     start_iteration = 0
@@ -252,6 +252,12 @@ def optimize(
                               "since_increase": resume["continuation_since_increase"]})
         if updater is not None:
             updater.restore(resume)
+        if schedule is not None:
+            damping.restore(resume)
+            if schedule.at_max:
+                move_limit = damping.move
+                if updater is not None:
+                    updater.set_move(move_limit)
     if schedule is not None:
         set_beta(chains, schedule.beta)
 
@@ -267,6 +273,8 @@ def optimize(
             out["continuation_since_increase"] = schedule.since_increase
         if updater is not None:
             out.update(updater.state())
+        if schedule is not None:
+            out.update(damping.state())
         return out
 
     iteration = start_iteration
@@ -306,7 +314,8 @@ def optimize(
                         extra = [(keep_in.value(), keep_in.gradient())]
                     x_new = updater(x, compliances=compliances, gradients=gradients, volume=vol,
                                     dv=dv, extra=extra)
-                change = float(np.max(np.abs(x_new - x)))
+                step = x_new - x
+                change = float(np.max(np.abs(step)))
                 row = {
                     "iteration": iteration + 1,
                     "compliance": ev.compliance,
@@ -338,9 +347,9 @@ def optimize(
                 if schedule is not None and schedule.step(change=change):
                     set_beta(chains, schedule.beta)
                 if schedule is not None:
-                    move_limit = damping.step(change, final=schedule.at_max)
+                    move_limit = damping.step(step, final=schedule.at_max)
                 if updater is not None:
-                    updater.mma.move = move_limit
+                    updater.set_move(move_limit)
             if checkpoint is not None and iteration % settings.checkpoint_every == 0:
                 checkpoint(state(iteration))
         interrupt.check()
@@ -371,34 +380,56 @@ def optimize(
 
 
 class MoveDamping:
-    """Halve the move limit while a design at its final sharpness keeps swinging.
+    """Per-element move limits once the design is at its final sharpness.
 
-    Once the projection has reached its final beta (runs with projection only), every
-    ``patience`` (10) iterations whose largest design change stayed at or above ``floor``
-    halve the move limit, down to ``floor`` (the change tolerance: a design still
-    moving by the full move limit does not count as converged, since convergence needs
-    a change strictly below the tolerance). Measured on the wall
-    bracket: OC on the free design swung two elements by the full move limit in a
-    two-iteration cycle for 200 iterations at a compliance constant to 1e-4, and MMA
-    with the keep-in constraint kept changes of 0.02-0.05 for 150 iterations.
+    Once the projection has reached its final beta (runs with projection only), an
+    element whose step changes sign (it swings) has its move limit halved; an element
+    that keeps moving the same way against its limit gets it back, 1.2 times per
+    iteration, up to the move limit set. Swinging elements so come to rest (their
+    swings shrink geometrically below the change tolerance) while a boundary that is
+    still migrating keeps its speed. This is the rule MMA applies to its asymptotes
+    (Svanberg 1987: shrink on oscillation, widen on a steady trend), applied to the
+    move limits. Measured on the wall bracket built along -y: with one move limit
+    for all elements, halved down to the change tolerance after every 10 restless
+    iterations, 75 of its elements crept by 0.01 per iteration in a constant direction
+    (net 0.16-0.30 over 30 iterations, median zero sign changes) and the run had not
+    converged after 800 iterations, compliance still falling.
     """
 
-    def __init__(self, move: float, *, floor: float, patience: int = 10):
-        self.move = float(move)
-        self.floor = min(float(floor), self.move)
-        self.patience = int(patience)
-        self._restless = 0
+    SHRINK = 0.5
+    GROW = 1.2
 
-    def step(self, change: float, *, final: bool) -> float:
-        """The move limit for the next iteration."""
-        if not final or change < self.floor:
-            self._restless = 0
-            return self.move
-        self._restless += 1
-        if self._restless >= self.patience:
-            self.move = max(self.floor, 0.5 * self.move)
-            self._restless = 0
+    def __init__(self, move: float, shape: tuple[int, ...]):
+        self.limit = float(move)
+        self.move = np.full(shape, self.limit)
+        self.last_step = np.zeros(shape)
+
+    def step(self, step: np.ndarray, *, final: bool) -> np.ndarray:
+        """The move limits (grid shape) for the next iteration, given the last step."""
+        if final:
+            swing = step * self.last_step < 0.0
+            pushing = ~swing & (np.abs(step) >= 0.5 * self.move) & (step * self.last_step > 0.0)
+            self.move[swing] *= self.SHRINK
+            self.move[pushing] = np.minimum(self.limit, self.move[pushing] * self.GROW)
+        self.last_step = np.asarray(step, dtype=float).copy()
         return self.move
+
+    def state(self) -> dict[str, np.ndarray]:
+        """Plain arrays for checkpoints."""
+        return {"damping_move": self.move.copy(), "damping_step": self.last_step.copy()}
+
+    def restore(self, state: Mapping) -> None:
+        """Restore from :meth:`state` output (checkpoints without it start afresh)."""
+        if "damping_move" not in state or "damping_step" not in state:
+            return
+        move = np.asarray(state["damping_move"], dtype=float)
+        step = np.asarray(state["damping_step"], dtype=float)
+        if move.shape != self.move.shape or step.shape != self.move.shape:
+            raise ValueError(f"checkpoint: damping_move and damping_step: expected shape "
+                             f"{self.move.shape}, got {move.shape} and {step.shape}")
+        if np.any(move <= 0.0) or np.any(move > self.limit):
+            raise ValueError(f"checkpoint: damping_move: expected values in (0, {self.limit}]")
+        self.move, self.last_step = move.copy(), step.copy()
 
 
 def _robust_designs(chains, model, x, blueprint_eval, blueprint_gradient):

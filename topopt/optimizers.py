@@ -457,6 +457,7 @@ class MMAComplianceUpdate:
         if self.bound:
             lower[-1], upper[-1] = -self._Z_MAX, self._Z_MAX
         self.n_extra = int(extra_constraints)
+        self.move = float(move)
         self.mma = MMA(n + self.bound, self.n_designs * self.bound + 1 + self.n_extra,
                        lower=lower, upper=upper, move=move)
         self.scale: float | None = None
@@ -520,6 +521,17 @@ class MMAComplianceUpdate:
         out = np.array(x, dtype=float, copy=True)
         out[self.active] = new
         return out
+
+    def set_move(self, move) -> None:
+        """Set the move limit: one number, or one per element (grid shape)."""
+        move = np.asarray(move, dtype=float)
+        if move.ndim == 0:
+            self.mma.move = float(move)
+            return
+        per_variable = move[self.active]
+        if self.bound:  # the bound variable z keeps the limit it was given
+            per_variable = np.append(per_variable, self.move)
+        self.mma.move = per_variable
 
     def state(self) -> dict[str, np.ndarray]:
         """Plain arrays for checkpoints."""

@@ -510,7 +510,9 @@ def problem_table(problem: Problem) -> dict:
     # the projection the reader adds by itself with a build direction (see problem_from_dict)
     implied = (Projection(every=DEFAULT_BETA_EVERY, beta_max=DEFAULT_BETA_MAX)
                if problem.build.active and settings.min_member_size is None else None)
-    if settings.projection is None:
+    if settings.projection is None and implied is not None:
+        opt["projection"] = False  # the reader would otherwise add the default one
+    elif settings.projection is None:
         opt.pop("projection", None)
     elif "projection" not in opt and settings.projection == implied:
         pass
@@ -841,7 +843,11 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         raise r.fail("optimize.volume_fraction",
                      f"{vf} exceeds the share of elements outside passive void ({(n - void.sum()) / n:.3f})")
     projection = None
-    if "projection" in opt:
+    projection_off = opt.get("projection") is False  # `projection = false`: none, not even the default
+    if opt.get("projection") is True:
+        raise r.fail("optimize.projection",
+                     "expected an [optimize.projection] table, or false for no projection")
+    if "projection" in opt and not projection_off:
         # looked up through the dotted name so errors name optimize.projection.<key>
         pt = r.table({"optimize": opt}, "optimize.projection",
                      set(Projection.__dataclass_fields__))
@@ -865,7 +871,10 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         if projection.preserve_volume and "eta" in pt:
             raise r.fail("optimize.projection.eta",
                          "is chosen at every iteration with preserve_volume = true; remove eta")
-    if projection is None and build.active and "min_member_size" not in opt:
+    if projection_off and "min_member_size" in opt:
+        raise r.fail("optimize.projection", "min_member_size needs projection; remove "
+                     "projection = false or min_member_size")
+    if projection is None and build.active and "min_member_size" not in opt and not projection_off:
         # self-supporting runs converge to a crisp design with projection continuation
         # (beta doubled every 25 iterations up to 16; measured: without it they stopped
         # 20 % grey and unconverged, and with beta up to 32 MMA swung between printed
@@ -975,7 +984,7 @@ def _default_move_limit(build: BuildSettings, opt: Mapping) -> float:
     """
     if build.active:
         return 0.05
-    nonlinear = "projection" in opt or "min_member_size" in opt
+    nonlinear = isinstance(opt.get("projection"), Mapping) or "min_member_size" in opt
     return 0.1 if nonlinear else 0.2
 
 

@@ -356,3 +356,41 @@ def test_keep_in_eye_is_held_against_the_plain_reference():
     assert not (solid & ~supported_mask(solid, direction="+y")).any()
     assert not held_check(solid, "+y", 45.0, 1.5).any()
     assert result.compliance <= 1.05 * reference, (result.compliance, reference)
+
+
+def test_supported_keep_in_with_the_earlier_settings_gives_the_earlier_design():
+    # issue check "the switch for today's behaviour gives today's result": keep_in =
+    # "supported" with the settings that were the defaults before keep-in regions were held
+    # (OC, move limit 0.1, no projection) reproduces the design of the version before that
+    # change. Regression reference: commit 5cdd1fa, run 2026-12-03 on this problem (our own
+    # earlier code, not an outside source): compliance 220.84658023222303 after 40
+    # iterations, sum of densities 399.37977034983464.
+    problem = problem_from_dict({
+        "name": "keep-in regression (invented)",
+        "domain": {"shape": [48, 24], "element_size": 1.0, "thickness": 1.0},
+        "material": {"youngs_modulus": 1.0, "poisson_ratio": 0.3, "void_stiffness": 1e-9},
+        "restraints": [{"where": {"center": [3.0, 12.0], "radius": 2.5}, "fix": ["x", "y"]}],
+        "loads": [{"where": {"center": [40.0, 16.0], "radius": 1.5}, "force": [0.0, -1.0]}],
+        "passive": [{"where": {"center": [40.0, 16.0], "radius": 3.5}, "state": "solid"}],
+        "optimize": {"method": "oc", "volume_fraction": 0.35, "filter_radius": 1.5,
+                     "max_iterations": 40, "change_tolerance": 0.001, "move_limit": 0.1,
+                     "projection": False},
+        "build": {"direction": "+y", "overhang_angle": 45.0, "keep_in": "supported"},
+    })
+    result = optimize(problem)
+    assert result.iterations == 40
+    assert result.compliance == pytest.approx(220.84658023222303, rel=1e-7)
+    assert float(result.density.sum()) == pytest.approx(399.37977034983464, rel=1e-7)
+
+
+def test_projection_false_switches_off_the_default_projection(tmp_path):
+    from topopt.problem import problem_table
+
+    base = {**CANTILEVER_2D, "build": {"direction": "+y", "keep_in": "supported"}}
+    assert problem_from_dict(base).optimize.projection is not None  # the default with a direction
+    off = problem_from_dict({**base, "optimize": {"volume_fraction": 0.4, "projection": False}})
+    assert off.optimize.projection is None
+    # written and read back it stays off (the table form says so explicitly)
+    assert problem_from_dict(problem_table(off)).optimize.projection is None
+    with pytest.raises(ValueError, match="optimize.projection"):
+        problem_from_dict({**base, "optimize": {"volume_fraction": 0.4, "projection": True}})

@@ -404,3 +404,42 @@ def test_resume_through_the_checkpoint_file(tmp_path):
     resumed = optimize(p, resume=state)
     np.testing.assert_allclose(resumed.design, full.design, atol=1e-10)
     assert resumed.compliance == pytest.approx(full.compliance, rel=1e-9)
+
+
+def test_move_damping_calms_swinging_elements_and_spares_steady_ones():
+    # the rule MMA applies to its asymptotes (Svanberg 1987), applied to move limits
+    from topopt.driver import MoveDamping
+
+    damping = MoveDamping(0.1, (3,))
+    swing, steady, still = 0, 1, 2
+    for k in range(6):
+        step = np.array([0.1 * (-1) ** k, 0.1, 0.0])
+        move = damping.step(step, final=True)
+    assert move[swing] == pytest.approx(0.1 * 0.5 ** 5)  # halved at each of 5 sign changes
+    assert move[steady] == 0.1 and move[still] == 0.1
+    # before the final beta nothing changes
+    early = MoveDamping(0.1, (1,))
+    for k in range(6):
+        assert early.step(np.array([0.1 * (-1) ** k]), final=False)[0] == 0.1
+    # a damped element that then moves steadily against its limit gets it back
+    for _ in range(30):
+        move = damping.step(np.array([0.0, 0.1, 0.0]) + move * np.array([1.0, 0.0, 0.0]), final=True)
+    assert move[swing] == pytest.approx(0.1)
+
+
+def test_resume_with_damped_move_limits_repeats_the_uninterrupted_run():
+    data = _coarse_mbb(
+        method="mma", checkpoint_every=5, projection=dict(beta_start=1.0, beta_max=2.0, every=3)
+    )
+    data["optimize"]["max_iterations"] = 40
+    data["optimize"]["change_tolerance"] = 1e-6
+    p = problem_from_dict(data, source="t.toml")
+    saved = []
+    full = optimize(p, checkpoint=lambda state: saved.append(copy.deepcopy(state)))
+    damped = [s for s in saved if s["iteration"] < 40 and np.ptp(s["damping_move"]) > 0]
+    assert damped, "the move limits were never damped: the check would not test the resume"
+    resumed = optimize(p, resume=damped[0])
+    np.testing.assert_allclose(resumed.design, full.design, atol=1e-12)
+    # without the damping state the resumed run would differ (the check can fail)
+    plain = {k: v for k, v in damped[0].items() if not k.startswith("damping_")}
+    assert np.abs(optimize(p, resume=plain).design - full.design).max() > 1e-9
