@@ -833,8 +833,18 @@ def plot_study(rows: list[dict], keys: tuple[str, ...], path: str | Path, *, tit
     for ax, key in zip(flat, x_keys, strict=False):
         others = [k for k in keys if k not in (key, "build.direction")] if mode == "product" else []
         _plot_against(ax, rows, ok, key, others, directions, colours)
-    _plot_tradeoff(flat[len(x_keys)], ok, keys, directions, colours)
-    for ax in flat[n_panels:]:
+    listing = _plot_tradeoff(flat[len(x_keys)], ok, keys, directions, colours)
+    spare = list(flat[n_panels:])
+    if listing and spare:  # the list of ringed cases gets the empty panel to itself
+        ax = spare.pop(0)
+        ax.axis("off")
+        ax.text(0.0, 1.0, "ringed cases, numbered by support volume\n" + "\n".join(listing[:30]),
+                fontsize=8, ha="left", va="top", transform=ax.transAxes)
+    elif listing:
+        flat[len(x_keys)].text(0.98, 0.02, "\n".join(listing[:13]), fontsize=6, ha="right",
+                               va="bottom", transform=flat[len(x_keys)].transAxes,
+                               bbox={"facecolor": "white", "alpha": 0.8, "edgecolor": "0.7"})
+    for ax in spare:
         ax.set_visible(False)
     heading = title or "study"
     if n_failed:
@@ -884,7 +894,8 @@ def _direction_label(direction: str) -> str:
     return "free (no build direction)" if direction == "none" else f"build {direction}"
 
 
-def _plot_tradeoff(ax, ok, keys, directions, colours) -> None:
+def _plot_tradeoff(ax, ok, keys, directions, colours) -> list[str]:
+    """Draw the support-compliance panel; return the lines listing the ringed cases."""
     pts = [r for r in ok if _is_number(r.get("support_volume"))]
     ax.set_xlabel("support volume (length unit^3)")
     ax.set_ylabel("compliance")
@@ -892,14 +903,18 @@ def _plot_tradeoff(ax, ok, keys, directions, colours) -> None:
     if not pts:
         ax.text(0.5, 0.5, "support volume not available\n(no solid design)", ha="center", va="center",
                 transform=ax.transAxes, fontsize=9)
-        return
+        return []
     xs = [r["support_volume"] for r in pts]
     ys = [r["compliance"] for r in pts]
     # Best designs weigh mass too: a case is ringed unless another has no more support,
     # no higher compliance and no more material (volume fraction) and is better in one.
-    mass = [float(r["volume_fraction"]) if _is_number(r.get("volume_fraction")) else 0.0
+    # (to 1e-3: the optimiser meets a volume fraction to about 1e-5, and a case at
+    # 0.29997 must not escape being beaten by one at 0.30000)
+    mass = [round(float(r["volume_fraction"]), 3) if _is_number(r.get("volume_fraction")) else 0.0
             for r in pts]
-    front = non_dominated(list(zip(xs, ys, mass, strict=True)))
+    # compliance to 6 significant digits: repeated runs of one design differ by 1e-7
+    rounded = [float(f"{y:.6g}") for y in ys]
+    front = non_dominated(list(zip(xs, rounded, mass, strict=True)))
     # the staircase joins the cases best in support and compliance alone (a subset)
     stairs = non_dominated(list(zip(xs, ys, strict=True)))
     for direction in dict.fromkeys(directions.get(r["case"], "") for r in pts):
@@ -925,8 +940,6 @@ def _plot_tradeoff(ax, ok, keys, directions, colours) -> None:
         ax.annotate(str(n), (r["support_volume"], r["compliance"]), fontsize=7,
                     xytext=(5, 5), textcoords="offset points")
         lines.append(f"{n}: " + ", ".join(_display(r[k]) for k in keys))
-    ax.text(0.98, 0.98 - 0.045 * (len(colours) + 1), "\n".join(lines[:13]), fontsize=6,
-            ha="right", va="top", transform=ax.transAxes,
-            bbox={"facecolor": "white", "alpha": 0.8, "edgecolor": "0.7"})
     ax.grid(alpha=0.3)
-    ax.legend(fontsize=7)
+    ax.legend(fontsize=7, loc="upper right")
+    return lines
