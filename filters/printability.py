@@ -415,27 +415,42 @@ def _logical_sweep(solid, order, on_plate, inner, mflat, shape, d, plate, member
 
 
 @numba.njit(cache=True)
-def _forward_kernel(x, keep, hold, order, on_plate, inner, mflat, shape, d, plate, members, starts,
-                    eps, p, p_int, q, xi, big, top, psum):  # noqa: D103
+def _forward_kernel(x, keep, hold, order, on_plate, pidx, under, table, count, column, lengths,
+                    eps, p, p_int, q, val, xi, big, top, psum):  # noqa: D103
+    # val is the padded grid (see _Sweep): constant 1.0 on or under the plate, 0.0
+    # outside the domain, and each element's printed density once it is known. The
+    # struts are folded side by side (row u of the table holds member u of every strut
+    # still that long), so the CPU overlaps their independent chains of square roots;
+    # each strut still folds its members foot first, as the docstring's formula says.
     # Stores per element the smooth maximum (big), its largest input (top) and the
     # scaled P-sum (psum), so that the backward sweep needs no second maximum.
     sq = math.sqrt(eps)
-    n_s = starts.size - 1
+    n_s = column.size
+    rows = count.size
     vals = np.zeros(max(n_s, 1))
+    cur = np.zeros(max(n_s, 1))
     for e in order:
+        pe = pidx[e]
         if on_plate[e]:
             xi[e] = x[e]
             big[e] = 1.0
             top[e] = 0.0
             psum[e] = 0.0
+            if not under[e]:
+                val[pe] = x[e]
             continue
+        if rows > 0:
+            for c in range(count[0]):
+                cur[c] = val[pe + table[0, c]]
+        for u in range(1, rows):
+            for c in range(count[u]):
+                a = cur[c]
+                w = val[pe + table[u, c]]
+                t = a - w
+                cur[c] = 0.5 * (a + w - math.sqrt(t * t + eps) + sq)
         m = 0.0
         for s in range(n_s):
-            v = 1.0
-            for t in range(starts[s], starts[s + 1]):
-                idx, under = _place(e, t, inner, mflat, members, shape, d, plate)
-                w = xi[idx] if idx >= 0 else under
-                v = w if t == starts[s] else _smin(v, w, eps, sq)
+            v = cur[column[s]]
             vals[s] = v
             if v > m:
                 m = v
@@ -454,23 +469,27 @@ def _forward_kernel(x, keep, hold, order, on_plate, inner, mflat, shape, d, plat
             xi[e] = x[e]
         else:
             xi[e] = _smin(x[e], b, eps, sq)
+        if not under[e]:
+            val[pe] = xi[e]
 
 
 @numba.njit(cache=True)
-def _backward_kernel(x, keep, hold, order, on_plate, inner, mflat, shape, d, plate, members,
-                     starts,
-                     eps, p, p_int, q, xi, big, top, psum, lam, dx):  # noqa: D103
-    # lam enters as the seed (adjoint of xi) and is completed in falling height
+def _backward_kernel(x, keep, hold, order, on_plate, pidx, under, table, count, column, lengths,
+                     eps, p, p_int, q, val, big, top, psum, seed, lamp, dx):  # noqa: D103
+    # lamp is the adjoint on the padded grid; it enters holding the seed at every element
+    # not under the plate (under it, an element is read as the constant 1.0, so nothing
+    # flows back into it) and is completed in falling height. Each element's struts are
+    # folded again side by side, keeping d smin / d(its inputs) as the ratio t / r, so
+    # the reverse pass along a strut needs no square root.
     sq = math.sqrt(eps)
-    n_s = starts.size - 1
-    width = 1
-    for s in range(n_s):
-        width = max(width, starts[s + 1] - starts[s])
-    fold = np.zeros(width)
-    where = np.zeros(width, dtype=np.int64)
+    n_s = column.size
+    rows = count.size
+    fold = np.zeros((max(rows, 1), max(n_s, 1)))
+    ratio = np.zeros((max(rows, 1), max(n_s, 1)))
     for n in range(order.size - 1, -1, -1):
         e = order[n]
-        g = lam[e]
+        pe = pidx[e]
+        g = seed[e] if under[e] else lamp[pe]
         if on_plate[e] or (keep[e] and not hold):
             dx[e] = g
             continue
@@ -483,30 +502,28 @@ def _backward_kernel(x, keep, hold, order, on_plate, inner, mflat, shape, d, pla
         if gb == 0.0 or m == 0.0:
             continue  # all supports zero: the smax gradient vanishes in the limit
         coef = gb * (p / q) * m ** (p / q - 1.0) * psum[e] ** (1.0 / q - 1.0)
+        if rows > 0:
+            for c in range(count[0]):
+                fold[0, c] = val[pe + table[0, c]]
+        for u in range(1, rows):
+            for c in range(count[u]):
+                a = fold[u - 1, c]
+                w = val[pe + table[u, c]]
+                t = a - w
+                rt = math.sqrt(t * t + eps)
+                fold[u, c] = 0.5 * (a + w - rt + sq)
+                ratio[u, c] = t / rt
         for s in range(n_s):
-            length = starts[s + 1] - starts[s]
-            v = 1.0
-            for u in range(length):
-                idx, under = _place(e, starts[s] + u, inner, mflat, members, shape, d, plate)
-                w = xi[idx] if idx >= 0 else under
-                where[u] = idx
-                v = w if u == 0 else _smin(v, w, eps, sq)
-                fold[u] = v
+            c = column[s]
+            length = lengths[s]
+            v = fold[length - 1, c]
             if v <= 0.0:
                 continue
             gv = coef * _power(v / m, p - 1.0, p_int - 1)
             for u in range(length - 1, 0, -1):
-                idx = where[u]
-                w = xi[idx] if idx >= 0 else 1.0
-                if idx < 0:
-                    _, w = _locate(e, members[starts[s] + u], shape, d, plate)
-                t1 = fold[u - 1] - w
-                r1 = math.sqrt(t1 * t1 + eps)
-                if idx >= 0:
-                    lam[idx] += gv * 0.5 * (1.0 + t1 / r1)
-                gv *= 0.5 * (1.0 - t1 / r1)
-            if where[0] >= 0:
-                lam[where[0]] += gv
+                lamp[pe + table[u, c]] += gv * 0.5 * (1.0 + ratio[u, c])
+                gv *= 0.5 * (1.0 - ratio[u, c])
+            lamp[pe + table[0, c]] += gv
 
 
 # ----------------------------------------------------------------------------------
@@ -523,6 +540,45 @@ class _Sweep:
     plate: float
     inner: np.ndarray  # flat, bool: the whole stencil inside the domain and above the plate
     mflat: np.ndarray  # flat-index offset of every strut member
+    # The smooth sweeps work on the grid padded by the stencil's reach on every side, so
+    # that every strut member is a fixed flat offset from its element (no bounds or
+    # plate tests in the loops):
+    pidx: np.ndarray  # padded flat index of every element
+    under: np.ndarray  # flat, bool: the element's centre lies on or under the plate
+    base: np.ndarray  # padded grid: 1.0 on or under the plate, 0.0 elsewhere
+    table: np.ndarray  # (rows, struts): padded offset of member u of the strut in column c
+    count: np.ndarray  # (rows,): struts at least u + 1 members long (columns by falling length)
+    column: np.ndarray  # (struts,): column of strut s in the table
+    lengths: np.ndarray  # (struts,): members of strut s
+
+
+def _padded_layout(shape3: np.ndarray, stencil: Stencil, plate: float):
+    """Padded grid, element positions in it, and the strut table (see :class:`_Sweep`)."""
+    m = stencil.members
+    d = stencil.direction
+    reach = np.abs(m).max(axis=0) if m.size else np.zeros(3, dtype=np.int64)
+    padded = shape3 + 2 * reach
+    strides = np.array([padded[1] * padded[2], padded[2], 1], dtype=np.int64)
+    idx = np.indices(tuple(shape3)).reshape(3, -1)
+    pidx = ((idx + reach[:, None]) * strides[:, None]).sum(axis=0).astype(np.int64)
+    # the plate test of a place, written as in the docstring's height of a centre
+    i, j, k = (np.arange(n) - r for n, r in zip(padded, reach, strict=True))
+    centre = ((i[:, None, None] + 0.5) * d[0] + (j[None, :, None] + 0.5) * d[1]
+              + (k[None, None, :] + 0.5) * d[2])
+    below = (centre <= plate + 1e-9).ravel()
+    base = np.where(below, 1.0, 0.0)
+    lengths = np.diff(stencil.starts).astype(np.int64)
+    by_length = np.argsort(-lengths, kind="stable")
+    column = np.empty(lengths.size, dtype=np.int64)
+    column[by_length] = np.arange(lengths.size)
+    rows = int(lengths.max()) if lengths.size else 0
+    table = np.zeros((rows, lengths.size), dtype=np.int64)
+    flat = m @ strides if m.size else np.zeros(0, dtype=np.int64)
+    for s in range(lengths.size):
+        start = stencil.starts[s]
+        table[: lengths[s], column[s]] = flat[start : start + lengths[s]]
+    count = np.array([np.count_nonzero(lengths > u) for u in range(rows)], dtype=np.int64)
+    return pidx, np.ascontiguousarray(below[pidx]), base, table, count, column, lengths
 
 
 def _sweep_setup(shape, direction, overhang_angle, plate_offset: float = 0.0) -> _Sweep:
@@ -542,6 +598,7 @@ def _sweep_setup(shape, direction, overhang_angle, plate_offset: float = 0.0) ->
             inner &= (idx[a] + m[:, a].min() >= 0) & (idx[a] + m[:, a].max() < shape3[a])
         inner = inner.ravel() & (heights + float((m @ d).min()) > plate + 1e-9)
     mflat = (m[:, 0] * shape3[1] * shape3[2] + m[:, 1] * shape3[2] + m[:, 2]).astype(np.int64)
+    pidx, under, base, table, count, column, lengths = _padded_layout(shape3, stencil, plate)
     return _Sweep(
         shape3=shape3,
         stencil=stencil,
@@ -550,6 +607,13 @@ def _sweep_setup(shape, direction, overhang_angle, plate_offset: float = 0.0) ->
         plate=plate,
         inner=np.ascontiguousarray(inner.ravel()),
         mflat=mflat,
+        pidx=pidx,
+        under=under,
+        base=base,
+        table=table,
+        count=count,
+        column=column,
+        lengths=lengths,
     )
 
 
@@ -610,11 +674,9 @@ class PrintabilityFilter:
 
     def _args(self):
         sw = self._sweep
-        st = sw.stencil
-        return (self._keep, self.keep_mode == "hold", sw.order, sw.on_plate, sw.inner, sw.mflat,
-                sw.shape3,
-                st.direction, sw.plate, st.members, st.starts, self.epsilon, self.p,
-                self._p_int, self.q)
+        return (self._keep, self.keep_mode == "hold", sw.order, sw.on_plate, sw.pidx, sw.under,
+                sw.table, sw.count, sw.column, sw.lengths, self.epsilon, self.p, self._p_int,
+                self.q)
 
     def forward(self, x: np.ndarray) -> np.ndarray:
         """Return the printed density of the blueprint density ``x`` (grid shape)."""
@@ -622,17 +684,21 @@ class PrintabilityFilter:
         if xf.size and xf.min() < -1e-9:
             raise ValueError(f"x must be non-negative, got a minimum of {xf.min():.3g}")
         xi, big, top, psum = (np.zeros_like(xf) for _ in range(4))
-        _forward_kernel(xf, *self._args(), xi, big, top, psum)
-        self._last = (xf, xi, big, top, psum)
+        val = self._sweep.base.copy()
+        _forward_kernel(xf, *self._args(), val, xi, big, top, psum)
+        self._last = (xf, xi, big, top, psum, val)
         out = xi if self.keep_mode == "print" else np.where(self._keep, xf, xi)
         return out.reshape(self.shape)
 
     def _reverse(self, seed: np.ndarray) -> np.ndarray:
         if self._last is None:
             raise ValueError("backward needs a forward call first")
-        xf, xi, big, top, psum = self._last
+        xf, xi, big, top, psum, val = self._last
+        sw = self._sweep
+        lamp = np.zeros_like(val)
+        lamp[sw.pidx] = np.where(sw.under, 0.0, seed)
         dx = np.zeros_like(xf)
-        _backward_kernel(xf, *self._args(), xi, big, top, psum, seed, dx)
+        _backward_kernel(xf, *self._args(), val, big, top, psum, seed, lamp, dx)
         return dx
 
     def backward(self, dy: np.ndarray) -> np.ndarray:
