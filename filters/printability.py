@@ -433,16 +433,19 @@ def _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, t, r, ratio
             fold = folds[c * width:c * width + nb]
             for i in range(nb):
                 w[i] = val[pos[i] + off]
-            for i in range(nb):
-                t[i] = fold[i] - w[i]
-            for i in range(nb):
-                r[i] = math.sqrt(t[i] * t[i] + eps)
-            for i in range(nb):
-                fold[i] = 0.5 * (fold[i] + w[i] - r[i] + sq)
             if ratios.size:
                 ratio = ratios[(u * n_c + c) * width:(u * n_c + c) * width + nb]
                 for i in range(nb):
-                    ratio[i] = t[i] / r[i]
+                    a = fold[i]
+                    ti = a - w[i]
+                    ri = math.sqrt(ti * ti + eps)
+                    fold[i] = 0.5 * (a + w[i] - ri + sq)
+                    ratio[i] = ti / ri
+            else:
+                for i in range(nb):
+                    a = fold[i]
+                    ti = a - w[i]
+                    fold[i] = 0.5 * (a + w[i] - math.sqrt(ti * ti + eps) + sq)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -588,7 +591,9 @@ def _backward_kernel(x, keep, hold, order, bands, on_plate, pidx, under, table, 
             elem[nb] = e
             pos[nb] = pidx[e]
             most[nb] = m
-            coef[nb] = gb * (p / q) * m ** (p / q - 1.0) * psum[e] ** (1.0 / q - 1.0)
+            # gb * d smax / d v_top, m**(P/Q - 1) * psum**(1/Q - 1) written as big / (m * psum)
+            # from the forward (no powers here; equal up to rounding)
+            coef[nb] = gb * (p / q) * (big[e] / (m * psum[e]))
             nb += 1
         if nb == 0:
             continue
