@@ -185,3 +185,20 @@ def test_fast_sweeps_match_the_straightforward_ones(shape, direction, angle, pla
                                         hold=mode == "hold", plate_offset=plate_offset)
         np.testing.assert_allclose(f.forward(x), y_ref, rtol=0.0, atol=1e-12)
         np.testing.assert_allclose(f.backward(dy), g_ref, rtol=0.0, atol=1e-12)
+
+
+@pytest.mark.parametrize(("eps", "p", "xi0"), [(1e-3, 7.5, 0.3), (1e-5, 12.0, 0.6)])
+@pytest.mark.parametrize(("shape", "direction", "angle"), [((30, 20), [1.0, 2.0], 35.0),
+                                                           ((10, 8, 7), [0.3, 0.5, 0.8], 55.0)])
+def test_fast_sweeps_match_for_other_smoothing_parameters(shape, direction, angle, eps, p, xi0):
+    # a non-integer P takes the general power, an integer one the repeated squaring
+    rng = np.random.default_rng(11)
+    keep = np.zeros(shape, dtype=bool)
+    f = printability_filter(shape, direction=direction, overhang_angle=angle, epsilon=eps, p=p,
+                            xi0=xi0)
+    x = rng.uniform(0.0, 1.0, shape)
+    dy = rng.standard_normal(shape)
+    y_ref, g_ref = reference_filter(x, dy, direction=direction, angle=angle, keep=keep, hold=False,
+                                    plate_offset=0.0, eps=eps, p=p, xi0=xi0)
+    np.testing.assert_allclose(f.forward(x), y_ref, rtol=0.0, atol=1e-12)
+    np.testing.assert_allclose(f.backward(dy), g_ref, rtol=0.0, atol=1e-12)
