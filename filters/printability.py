@@ -48,6 +48,14 @@ the papers::
 The adjoint is a reverse sweep in falling height (exact; checked by finite
 differences in the tests).
 
+The smooth sweeps are arranged for speed without changing the formula: the grid is
+padded by the stencil's reach so that every strut member is a fixed flat offset, and the
+height order is cut into bands narrower than the shallowest strut member, whose
+elements never read each other and are computed together in SIMD lanes. The forward
+does the same floating-point operations as an element-by-element sweep; the backward
+adds the same terms in another order (``tests/filters/test_printability_reference.py``
+keeps the straightforward sweeps and compares).
+
 Keep-in elements (``keep``) are handled in one of two ways. ``keep_mode="print"``: they
 print as their input whatever lies below them (supports will be added under them) and
 hold up what is built on them. ``keep_mode="hold"``: the sweep treats them like any
