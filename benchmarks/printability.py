@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
+import os
 import platform
 import sys
 import time
@@ -96,10 +97,12 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     rng = np.random.default_rng(0)
     rows = []
+    load_before = os.getloadavg()
     for shape in QUICK if args.quick else SIZES:
         row = measure(shape, rng)
         rows.append(row)
         print(row, flush=True)
+    load_after = os.getloadavg()
     labels = [c[0] for c in CASES]
     head = ("| grid | free dofs | solver | one solve (ms) | "
             + " | ".join(f"{lab} (ms, % of solve, struts)" for lab in labels) + " |")
@@ -107,8 +110,10 @@ def main(argv: list[str] | None = None) -> int:
         "# Printability filter against one linear solve",
         "",
         f"Measured {dt.datetime.now(dt.UTC):%Y-%m-%d %H:%M} UTC on {platform.machine()}, "
-        f"Python {platform.python_version()}, {__import__('os').cpu_count()} cores shared with "
-        "other work; minimum of repeated runs. Written by `benchmarks/printability.py`. "
+        f"Python {platform.python_version()}, {os.cpu_count()} cores shared with "
+        "other work; minimum of repeated runs. Load average (1 min) "
+        f"{load_before[0]:.1f} at the start, {load_after[0]:.1f} at the end. "
+        "Written by `benchmarks/printability.py`. "
         "Directions: 2D axis +y, tilted [1, 2] and [-1, 3]; 3D axis +z, tilted [0, 1, 1], "
         "[1, 1, 1] and [0.3, 0.5, 0.8] (see CASES in the script).",
         "",
