@@ -19,6 +19,7 @@ import signal
 import subprocess
 import sys
 import time
+import tomllib
 import zipfile
 from pathlib import Path
 
@@ -397,3 +398,55 @@ def test_compare_and_sweep_refuse_a_folder_being_written(tmp_path, capsys):
             assert code == 2 and time.perf_counter() - t0 < 5.0, err
             assert "another buttress run" in err and len(err.strip().splitlines()) == 1
         assert not out.exists()
+
+
+# ---------------------------------------------------------------------------- metrics
+
+
+def plain(value):
+    """A metric as ``summary.json`` holds it: tuples as lists, NaN as null (DESIGN.md)."""
+    if isinstance(value, (tuple, list)):
+        return [plain(v) for v in value]
+    if isinstance(value, dict):
+        return {k: plain(v) for k, v in value.items()}
+    if isinstance(value, float) and not np.isfinite(value):
+        return None
+    return value
+
+
+@pytest.mark.parametrize("direction", ["+y", "none"])
+def test_written_summary_is_the_results_own_metrics(tmp_path, monkeypatch, direction):
+    import dataclasses
+
+    import topopt.export
+    from topopt.driver import optimize
+    from topopt.problem import problem_from_dict
+    from topopt.results import measure, read_summary, summary_dict, write_results
+
+    table = tomllib.loads(SMALL)
+    table["build"] = {"direction": direction}
+    problem = problem_from_dict(table, source="small.toml")
+    result = optimize(problem)
+    assert result.metrics is None  # the loop itself measures nothing
+    measured = measure(result, problem)
+    metrics = measured.metrics
+    assert measure(measured, problem) is measured
+    if direction == "+y":
+        assert metrics.unsupported_elements is not None and metrics.build_vector == (0.0, 1.0)
+    else:
+        assert metrics.unsupported_elements is None and metrics.support_volume is None
+    # writing reads the figures from the result: measuring again would fail here
+    def measured_again(*args, **kwargs):
+        raise AssertionError("the summary writer measured the result again")
+
+    for name in ("printability_summary", "length_scale_summary", "structural_summary_of"):
+        monkeypatch.setattr(topopt.export, name, measured_again)
+    out = tmp_path / "out"
+    write_results(measured, problem, out, formats=())
+    summary = read_summary(out)
+    figures = metrics.as_dict()
+    assert [f.name for f in dataclasses.fields(metrics)] == list(figures)
+    assert {k: summary[k] for k in figures} == plain(figures)
+    # the figures close the summary, in the dataclass's order (summary.json unchanged)
+    assert list(summary)[-len(figures):] == list(figures)
+    assert summary == plain(summary_dict(measured, problem))

@@ -289,3 +289,30 @@ def test_bundled_overhang_study_is_valid_and_runs_on_a_coarse_grid(tmp_path):
     rows = study.run(data, out_dir=tmp_path / "out", workers=1)
     assert len(rows) == 8 and all(r["status"] == "ok" for r in rows), rows
     assert (tmp_path / "out" / "study.png").stat().st_size > 0
+
+
+def test_cases_are_measured_once_in_the_runner_and_the_summary_holds_it(tmp_path, monkeypatch):
+    # the case's figures are measured with its result (in the worker) and written as they
+    # are: one measurement per case, and summary.json holds the result's own metrics
+    import topopt.export
+    from topopt.results import read_summary
+
+    path = write_study(tmp_path, {"build.direction": ["+y", "none"]}, iterations=4)
+    measured = []
+    real = topopt.export.printability_summary
+    monkeypatch.setattr(topopt.export, "printability_summary",
+                        lambda *a, **k: measured.append(1) or real(*a, **k))
+    results = {}
+    real_run_case = study.run_case
+    monkeypatch.setattr(study, "run_case", lambda table, **k: results.setdefault(
+        table.get("build", {}).get("direction", "none"), real_run_case(table, **k)))
+    rows = study.run(path, out_dir=tmp_path / "out", workers=1)
+    assert len(measured) == 2
+    for row in rows:
+        metrics = results[row["build.direction"]]["result"].metrics
+        summary = read_summary(tmp_path / "out" / "cases" / row["case"])
+        assert summary["unsupported_elements"] == metrics.unsupported_elements
+        assert summary["support_volume"] == metrics.support_volume
+        assert row["unsupported_elements"] == metrics.unsupported_elements
+    assert {r["build.direction"]: r["unsupported_elements"] is None for r in rows} == {
+        "+y": False, "none": True}
