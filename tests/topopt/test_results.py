@@ -12,6 +12,7 @@ Sources
 
 from __future__ import annotations
 
+import contextlib
 import os
 import random
 import shutil
@@ -131,30 +132,37 @@ def test_finished_results_are_kept_without_overwrite(finished, capsys):
             str(out), "--overwrite")
 
 
+@contextlib.contextmanager
+def unwritable(folder: Path):
+    """``folder`` cannot be written while the block runs (skips the test where impossible)."""
+    if os.geteuid() == 0:
+        # root writes through permission bits; the immutable flag stops root as well
+        if shutil.which("chattr") is None or subprocess.run(
+                ["chattr", "+i", str(folder)], capture_output=True).returncode != 0:
+            pytest.skip("cannot make a folder unwritable for root here (no chattr +i)")
+    else:
+        folder.chmod(0o555)
+    try:
+        yield
+    finally:
+        if os.geteuid() == 0:
+            subprocess.run(["chattr", "-i", str(folder)], check=True)
+        else:
+            folder.chmod(0o755)
+
+
 def test_unwritable_target_is_refused_before_the_run(tmp_path, capsys):
     problem = tmp_path / "small.toml"
     problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 5000"))
     parent = tmp_path / "locked"
     parent.mkdir()
-    if os.geteuid() == 0:
-        # root writes through permission bits; the immutable flag stops root as well
-        if shutil.which("chattr") is None or subprocess.run(
-                ["chattr", "+i", str(parent)], capture_output=True).returncode != 0:
-            pytest.skip("cannot make a folder unwritable for root here (no chattr +i)")
-    else:
-        parent.chmod(0o555)
-    try:
+    with unwritable(parent):
         t0 = time.perf_counter()
         code = main(["optimize", str(problem), "--out", str(parent / "out"), "--quiet"])
         err = capsys.readouterr().err
         # refused at once (5000 iterations would take minutes), one line naming the folder
         assert code == 2 and time.perf_counter() - t0 < 5.0
         assert len(err.strip().splitlines()) == 1 and str(parent / "out") in err, err
-    finally:
-        if os.geteuid() == 0:
-            subprocess.run(["chattr", "-i", str(parent)], check=True)
-        else:
-            parent.chmod(0o755)
     assert list(parent.iterdir()) == []
 
 
@@ -450,3 +458,68 @@ def test_written_summary_is_the_results_own_metrics(tmp_path, monkeypatch, direc
     # the figures close the summary, in the dataclass's order (summary.json unchanged)
     assert list(summary)[-len(figures):] == list(figures)
     assert summary == plain(summary_dict(measured, problem))
+
+
+# ---------------------------------------------------------------------------- compare
+
+
+def compare_argv(problem: Path, out: Path, *more: str) -> list[str]:
+    return ["compare", str(problem), "--directions", "+y", "--workers", "1", "--out", str(out),
+            "--quiet", *more]
+
+
+def test_two_concurrent_compares_one_is_refused_at_once(tmp_path):
+    problem = tmp_path / "small.toml"
+    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 120")
+                       .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
+    out = tmp_path / "cmp"
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    cmd = [sys.executable, "-m", "topopt.cli", *compare_argv(problem, out)]
+    procs = [subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True) for _ in range(2)]
+    ended = {}
+    deadline = time.monotonic() + 600
+    while len(ended) < 2 and time.monotonic() < deadline:
+        for k, p in enumerate(procs):
+            if k not in ended and p.poll() is not None:
+                ended[k] = time.monotonic()
+        time.sleep(0.02)
+    results = [p.communicate(timeout=60) for p in procs]
+    codes = [p.returncode for p in procs]
+    assert sorted(codes) == [0, 2], (codes, results)
+    loser, winner = codes.index(2), codes.index(0)
+    err = results[loser][1]
+    assert "another buttress run" in err and "Traceback" not in err, err
+    assert len(err.strip().splitlines()) == 1, err
+    # refused at once: the loser ended while the winner was still running its cases
+    assert ended[loser] < ended[winner]
+    assert read_results(out / "plus-y").summary["iterations"] == 120
+    assert (out / "comparison.csv").exists()
+
+
+def test_compare_into_a_read_only_location_is_refused_before_any_run(tmp_path, capsys):
+    problem = tmp_path / "small.toml"
+    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 5000")
+                       .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
+    parent = tmp_path / "locked"
+    parent.mkdir()
+    with unwritable(parent):
+        refused(capsys, compare_argv(problem, parent / "cmp"), parent, str(parent / "cmp"),
+                "cannot write")
+    assert list(parent.iterdir()) == []
+
+
+@pytest.mark.parametrize("own", ["notes.txt", "comparison.png", "none/design.png",
+                                 "plus-y/problem.toml"])
+def test_compare_never_replaces_the_users_own_files_without_overwrite(tmp_path, capsys, own):
+    problem = tmp_path / "small.toml"
+    problem.write_text(SMALL)
+    out = tmp_path / "runs" / "cmp"
+    (out / own).parent.mkdir(parents=True, exist_ok=True)
+    (out / own).write_bytes(b"the user's own file")
+    refused(capsys, compare_argv(problem, out), out, str(out), "--overwrite")
+    # with --overwrite the comparison is written; files that are not its own are kept
+    (out / "keep.txt").write_text("keep")
+    assert main(compare_argv(problem, out, "--overwrite")) == 0
+    assert (out / "keep.txt").read_text() == "keep"
+    assert (out / "comparison.csv").exists() and (out / "plus-y" / "summary.json").exists()
