@@ -449,6 +449,12 @@ def _run_dask(
                                        host="127.0.0.1", dashboard_address=None,
                                        protocol="tls://", security=security)
             client = Client(cluster, security=security)
+            # the workers are this process's children (their nannies run here): they end
+            # with it however it ends. distributed watches a pipe from the parent; ours
+            # does not rest on that detail (without it, workers outlived a kill -9)
+            from topopt.parallel import die_with_parent
+
+            client.run(die_with_parent, os.getpid())
         else:
             try:
                 client = Client(scheduler, timeout=15)

@@ -101,15 +101,32 @@ def session_processes(sid: int) -> dict[int, tuple[int, str]]:
     return found
 
 
+def _dask_available() -> bool:
+    try:
+        import cryptography  # noqa: F401
+        import distributed  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc")
 @pytest.mark.parametrize("signum", [signal.SIGKILL, signal.SIGTERM], ids=["SIGKILL", "SIGTERM"])
-def test_killed_sweep_leaves_no_worker_behind(tmp_path, signum):
+@pytest.mark.parametrize("runner", [
+    "pool",
+    pytest.param("dask", marks=pytest.mark.skipif(not _dask_available(),
+                                                  reason="needs distributed and cryptography")),
+])
+def test_killed_sweep_leaves_no_worker_behind(tmp_path, signum, runner):
+    # pool: the sweep's own worker processes (topopt.parallel); dask: the local cluster's
+    # worker processes (spawned by its nannies, which run inside the sweep) and
+    # multiprocessing's resource tracker
     path = write_study(tmp_path, {"optimize.volume_fraction": [0.3, 0.35, 0.4, 0.45, 0.5, 0.55]},
                        iterations=2000)
     out = tmp_path / "out"
     proc = subprocess.Popen(
         [sys.executable, "-m", "topopt.cli", "sweep", str(path), "--out", str(out),
-         "--workers", "2", "--quiet"],
+         "--workers", "2", "--quiet", *(["--dask"] if runner == "dask" else [])],
         cwd=REPO, start_new_session=True, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
         env={**os.environ, "PYTHONPATH": str(REPO)})
     sid = proc.pid  # a new session's id is its leader's pid
@@ -124,7 +141,8 @@ def test_killed_sweep_leaves_no_worker_behind(tmp_path, signum):
             assert proc.poll() is None, proc.stderr.read().decode()
             assert time.monotonic() < deadline, "workers did not start within 120 s"
             time.sleep(0.05)
-        time.sleep(1.0)  # let the workers take up their cases
+        # let the workers take up their cases (a Dask worker first imports and connects)
+        time.sleep(1.0 if runner == "pool" else 5.0)
         proc.send_signal(signum)  # the sweep only, not its workers
         proc.wait(timeout=60)
         deadline = time.monotonic() + 15
