@@ -26,6 +26,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import SMALL, refused, write_problem
 
 from topopt.cli import main
 from topopt.results import (
@@ -39,44 +40,10 @@ from topopt.results import (
 
 ROOT = Path(__file__).resolve().parents[2]
 
-SMALL = """\
-name = "small plate (invented)"
-
-[domain]
-shape = [20, 10]
-element_size = 1.0
-
-[material]
-youngs_modulus = 1000.0
-poisson_ratio = 0.3
-
-[[restraints]]
-where = { x = [0.0, 0.0] }
-
-[[loads]]
-where = { x = [20.0, 20.0], y = [0.0, 0.0] }
-force = [0.0, -1.0]
-
-[optimize]
-volume_fraction = 0.4
-max_iterations = 4
-"""
-
-
-def snapshot(folder: Path) -> dict:
-    """Every file under ``folder`` (and the folder's siblings) with bytes and mtime."""
-    out = {}
-    for p in sorted(folder.parent.rglob("*")):
-        if p.is_file():
-            out[str(p.relative_to(folder.parent))] = (p.read_bytes(), p.stat().st_mtime_ns)
-    return out
-
-
 @pytest.fixture(scope="module")
 def finished_folder(tmp_path_factory):
     root = tmp_path_factory.mktemp("results")
-    problem = root / "small.toml"
-    problem.write_text(SMALL)
+    problem = write_problem(root)
     out = root / "out"
     assert main(["optimize", str(problem), "--out", str(out), "--quiet"]) == 0
     return problem, out
@@ -91,28 +58,11 @@ def finished(tmp_path, finished_folder):
     return tmp_path / "small.toml", tmp_path / "runs" / "out"
 
 
-def refused(capsys, argv, folder: Path, *needles: str) -> str:
-    """Run ``main(argv)``; assert exit 2, one line naming needles, folder untouched, < 5 s."""
-    before = snapshot(folder)
-    t0 = time.perf_counter()
-    code = main(argv)
-    elapsed = time.perf_counter() - t0
-    err = capsys.readouterr().err
-    assert code == 2, err
-    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err, err
-    for needle in needles:
-        assert needle in err, (needle, err)
-    assert snapshot(folder) == before
-    assert elapsed < 5.0, elapsed
-    return err
-
-
 # ---------------------------------------------------------------------------- refusals
 
 
 def test_users_own_files_are_not_replaced_without_overwrite(tmp_path, capsys):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL)
+    problem = write_problem(tmp_path)
     out = tmp_path / "runs" / "mine"
     out.mkdir(parents=True)
     (out / "design.png").write_bytes(b"the user's own picture")
@@ -152,8 +102,7 @@ def unwritable(folder: Path):
 
 
 def test_unwritable_target_is_refused_before_the_run(tmp_path, capsys):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 5000"))
+    problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 5000"))
     parent = tmp_path / "locked"
     parent.mkdir()
     with unwritable(parent):
@@ -168,8 +117,7 @@ def test_unwritable_target_is_refused_before_the_run(tmp_path, capsys):
 
 def test_a_second_writer_is_refused_at_once(tmp_path, capsys):
     out = tmp_path / "out"
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL)
+    problem = write_problem(tmp_path)
     with folder_lock(out):
         t0 = time.perf_counter()
         code = main(["optimize", str(problem), "--out", str(out), "--quiet"])
@@ -183,9 +131,8 @@ def test_a_second_writer_is_refused_at_once(tmp_path, capsys):
 
 
 def test_two_concurrent_processes_one_is_refused(tmp_path):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 60")
-                       .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
+    problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 60")
+                                      .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
     out = tmp_path / "out"
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     cmd = [sys.executable, "-m", "topopt.cli", "optimize", str(problem), "--out", str(out),
@@ -227,8 +174,8 @@ def test_kill_during_writing_leaves_the_old_or_the_new_folder(tmp_path, finished
     # kill -9 at a random moment of writing an --overwrite run, many times: the folder
     # must always read back complete, either the old run (4 iterations) or the new (3)
     problem, out = finished
-    new_problem = tmp_path / "new.toml"
-    new_problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 3"))
+    new_problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 3"),
+                                name="new.toml")
     script = tmp_path / "kill_writer.py"
     script.write_text(KILL_SCRIPT)
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
@@ -393,8 +340,7 @@ def test_hand_made_checkpoint_is_one_line_naming_the_entry(tmp_path, finished, c
 
 
 def test_compare_and_sweep_refuse_a_folder_being_written(tmp_path, capsys):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL)
+    problem = write_problem(tmp_path)
     study = tmp_path / "study.toml"
     study.write_text('problem = "small.toml"\n[vary]\n"optimize.volume_fraction" = [0.3, 0.4]\n')
     for argv, out in ((["compare", str(problem), "--directions", "+y"], tmp_path / "cmp"),
@@ -469,9 +415,8 @@ def compare_argv(problem: Path, out: Path, *more: str) -> list[str]:
 
 
 def test_two_concurrent_compares_one_is_refused_at_once(tmp_path):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 120")
-                       .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
+    problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 120")
+                                      .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
     out = tmp_path / "cmp"
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     cmd = [sys.executable, "-m", "topopt.cli", *compare_argv(problem, out)]
@@ -498,9 +443,8 @@ def test_two_concurrent_compares_one_is_refused_at_once(tmp_path):
 
 
 def test_compare_into_a_read_only_location_is_refused_before_any_run(tmp_path, capsys):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 5000")
-                       .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
+    problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 5000")
+                                      .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
     parent = tmp_path / "locked"
     parent.mkdir()
     with unwritable(parent):
@@ -512,8 +456,7 @@ def test_compare_into_a_read_only_location_is_refused_before_any_run(tmp_path, c
 @pytest.mark.parametrize("own", ["notes.txt", "comparison.png", "none/design.png",
                                  "plus-y/problem.toml"])
 def test_compare_never_replaces_the_users_own_files_without_overwrite(tmp_path, capsys, own):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL)
+    problem = write_problem(tmp_path)
     out = tmp_path / "runs" / "cmp"
     (out / own).parent.mkdir(parents=True, exist_ok=True)
     (out / own).write_bytes(b"the user's own file")

@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import TINY, write_study
 
 from topopt import study
 from topopt.cli import main
@@ -26,27 +27,7 @@ from topopt.problem import to_toml
 
 REPO = Path(__file__).resolve().parents[2]
 
-TINY = {
-    "name": "tiny cantilever",
-    "domain": {"shape": [24, 12], "element_size": 1.0},
-    "material": {"youngs_modulus": 1.0, "poisson_ratio": 0.3},
-    "restraints": [{"where": {"x": [0.0, 0.0]}, "fix": ["x", "y"]}],
-    "loads": [{"where": {"x": [24.0, 24.0], "y": [6.0, 6.0]}, "force": [0.0, -1.0]}],
-    "optimize": {"volume_fraction": 0.4, "filter_radius": 1.5, "max_iterations": 15},
-}
-
 FOUR = {"optimize.volume_fraction": [0.35, 0.5], "optimize.filter_radius": [1.5, 2.0]}
-
-
-def write_study(folder: Path, vary: dict, *, iterations: int = 15) -> Path:
-    problem = copy.deepcopy(TINY)
-    problem["optimize"]["max_iterations"] = iterations
-    (folder / "tiny.toml").write_text(to_toml(problem))
-    lines = ['problem = "tiny.toml"', "[vary]"]
-    lines += [f'"{k}" = {json.dumps(v)}' for k, v in vary.items()]
-    path = folder / "study.toml"
-    path.write_text("\n".join(lines) + "\n")
-    return path
 
 
 def read_table(path: Path) -> list[dict]:
