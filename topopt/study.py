@@ -450,8 +450,8 @@ def _run_dask(
                                        protocol="tls://", security=security)
             client = Client(cluster, security=security)
             # the workers are this process's children (their nannies run here): they end
-            # with it however it ends. distributed watches a pipe from the parent; ours
-            # does not rest on that detail (without it, workers outlived a kill -9)
+            # with it however it ends. distributed watches a pipe from the parent too;
+            # with that watch disabled the workers outlived a kill -9 and this ended them
             from topopt.parallel import die_with_parent
 
             client.run(die_with_parent, os.getpid())
