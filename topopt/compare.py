@@ -140,7 +140,8 @@ def compare(
     progress : bool
         Print one line per finished run to standard error.
     overwrite : bool
-        Replace a comparison already in ``out_dir``; otherwise that is an error.
+        Replace a comparison already in ``out_dir`` (files that are not the comparison's
+        are kept); otherwise a folder holding anything is an error.
 
     Returns
     -------
@@ -150,8 +151,10 @@ def compare(
     Raises
     ------
     ValueError
-        For unknown or repeated directions, a bad ``workers`` value, or an ``out_dir``
-        that holds results already.
+        For unknown or repeated directions, a bad ``workers`` value, an ``out_dir``
+        that cannot be written, is being written by another run (a lock beside it), or
+        holds results or files of the user's own without ``overwrite`` (all before any
+        run).
 
     Examples
     --------
@@ -161,18 +164,41 @@ def compare(
     >>> [(r["direction"], r["results"]) for r in rows]
     [('none', 'none'), ('+y', 'plus-y')]
     """
-    from topopt.export import write_csv
-    from topopt.problem import ProblemError
-    from topopt.study import read_density, read_summary, run_cases, study_of
+    from topopt.results import check_writable, folder_lock
 
     runs = ["none"] + _check_directions(directions, problem.grid.dim)
     n_workers = _check_workers(workers, len(runs))
     out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise ValueError(f"{out}: exists and is not a folder")
+    check_writable(out)  # before any run, not after the last
+    with folder_lock(out):  # a second comparison into the same folder is refused at once
+        check_output(out, runs, overwrite=overwrite)
+        return _compare(problem, runs, out, n_workers=n_workers, progress=progress)
+
+
+def check_output(out: Path, runs: list, *, overwrite: bool) -> None:
+    """Refuse an ``out`` holding anything (a comparison, or files of the user's own) unless ``overwrite``.
+
+    Hidden entries (the lock, temporary folders) do not count. With ``overwrite`` the
+    comparison's files and run folders are replaced; other files are left alone.
+    """
+    if overwrite or not out.is_dir():
+        return
+    names = sorted(p.name for p in out.iterdir() if not p.name.startswith("."))
+    if not names:
+        return
     taken = [out / "comparison.csv"] + [out / folder_name(d) / "summary.json" for d in runs]
-    if not overwrite and any(p.exists() for p in taken):
-        raise ValueError(f"{out}: holds results already; use overwrite or another folder")
+    if any(p.exists() for p in taken):
+        raise ValueError(f"{out}: holds results already; use --overwrite or another --out")
+    raise ValueError(f"{out}: holds files that are not a finished comparison (e.g. {names[0]}); "
+                     "use --overwrite to replace the comparison, or another --out")
+
+
+def _compare(problem, runs: list, out: Path, *, n_workers: int, progress: bool) -> list[dict]:
+    """Run the comparison into ``out`` (checked and locked by :func:`compare`)."""
+    from topopt.export import write_csv
+    from topopt.problem import ProblemError
+    from topopt.study import read_density, read_summary, run_cases, study_of
+
     shared = {}
     opt = problem.source.get("optimize", {})
     if "projection" not in opt and "min_member_size" not in opt:

@@ -13,7 +13,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 
 import numpy as np
 
@@ -25,9 +25,53 @@ from topopt.objective import ComplianceModel, grey_level, volume_fraction
 from topopt.optimizers import OPTIMIZERS, oc_update
 
 
+@dataclass(frozen=True)
+class Metrics:
+    """Figures of a result's physical density, as ``summary.json`` holds them.
+
+    Printability (null without a build direction): ``unsupported_elements`` and of
+    them ``unsupported_keep_in_elements``, ``unholdable_keep_in_elements``,
+    ``overhang_area``, ``enforced_overhang_angle``, ``steepest_overhang_angle``,
+    ``build_vector``, ``support_volume``; length scale: ``min_member_size``,
+    ``min_gap_size``; structural: ``load_cases``, ``stress_convention``,
+    ``solid_volume``, ``mass``, ``mass_unit``. Measured once per result by
+    :func:`topopt.results.measure` (the analysis lives above the loop); the summary
+    writer, ``compare`` and studies read them from here.
+    """
+
+    unsupported_elements: int | None = None
+    unsupported_keep_in_elements: int | None = None
+    unholdable_keep_in_elements: int | None = None
+    overhang_area: float | None = None
+    enforced_overhang_angle: float | None = None
+    steepest_overhang_angle: float | None = None
+    build_vector: tuple[float, ...] | None = None
+    support_volume: float | None = None
+    min_member_size: float | None = None
+    min_gap_size: float | None = None
+    load_cases: tuple[Mapping, ...] = ()
+    stress_convention: str = ""
+    solid_volume: float | None = None
+    mass: float | None = None
+    mass_unit: str = "kg"
+
+    def as_dict(self) -> dict:
+        """The figures as ``summary.json`` keys, in its order (lists where it has lists)."""
+        out = {f.name: getattr(self, f.name) for f in fields(self)}
+        if out["build_vector"] is not None:
+            out["build_vector"] = list(out["build_vector"])
+        out["load_cases"] = [dict(case) for case in out["load_cases"]]
+        return out
+
+
 @dataclass(frozen=True, eq=False)
 class Result:
-    """Outcome of an optimisation run."""
+    """Outcome of an optimisation run.
+
+    ``metrics`` is ``None`` as the loop returns it and filled by
+    :func:`topopt.results.measure` (the results folder, ``compare`` and studies do that
+    once, before anything reads them).
+    """
 
     density: np.ndarray = field(repr=False)
     design: np.ndarray = field(repr=False)
@@ -43,6 +87,7 @@ class Result:
     #: keep-in elements the domain cannot hold up (no printable path below them even
     #: with every element that may be solid made solid); held out of the constraint
     unholdable_keep_in: int = 0
+    metrics: Metrics | None = field(default=None, repr=False)
 
 
 def build_filter_chain(problem, *, eta: float | None = None) -> FilterChain:

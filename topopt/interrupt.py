@@ -8,6 +8,10 @@ exception (a finaliser, a callback from compiled code): the optimisation loop ca
 :func:`check` at every iteration and the results writer before swapping a folder in,
 and both raise ``KeyboardInterrupt`` again while a request is pending.
 
+Such a swallowed ``KeyboardInterrupt`` would still be printed by Python as "Exception
+ignored in ... Traceback"; inside :func:`handlers` it is dropped silently instead
+(``sys.unraisablehook``), since the recorded request is honoured at the next safe point.
+
 Outside :func:`handlers` (library use) nothing is installed and :func:`check` never
 raises. Inside :func:`deferred` a signal is only recorded; it raises when the block ends.
 """
@@ -16,6 +20,7 @@ from __future__ import annotations
 
 import contextlib
 import signal
+import sys
 import threading
 from collections.abc import Iterator
 
@@ -67,6 +72,15 @@ def handlers() -> Iterator[None]:
         return
     _pending.clear()
     previous = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
+    previous_hook = sys.unraisablehook
+
+    def unraisable(info) -> None:
+        # a Ctrl-C raised inside a finaliser: recorded by _handle, honoured by check()
+        if isinstance(info.exc_value, KeyboardInterrupt) and _pending:
+            return
+        previous_hook(info)
+
+    sys.unraisablehook = unraisable
     for s in previous:
         signal.signal(s, _handle)
     try:
@@ -74,4 +88,5 @@ def handlers() -> Iterator[None]:
     finally:
         for s, handler in previous.items():
             signal.signal(s, handler)
+        sys.unraisablehook = previous_hook
         _pending.clear()

@@ -297,11 +297,15 @@ def write_results(result, problem, out_dir: str | Path, *,
 
 
 def summary_dict(result, problem) -> dict:
-    """The ``summary.json`` contents: the result's own metrics plus the problem's labels."""
+    """The ``summary.json`` contents: the result's own figures plus the problem's labels.
+
+    The figures are the result's :class:`~topopt.driver.Metrics`, measured here only if
+    nobody has measured them yet (see :func:`measure`).
+    """
     from topopt.export import CAUTION
     from topopt.version import __version__
 
-    metrics = result_metrics(result, problem)
+    metrics = measure(result, problem).metrics
     summary = {
         "name": problem.name,
         "compliance": result.compliance,
@@ -320,17 +324,42 @@ def summary_dict(result, problem) -> dict:
         "version": __version__,
         "caution": CAUTION,
     }
-    summary.update(metrics)
+    summary.update(metrics.as_dict())
     return summary
 
 
-def result_metrics(result, problem) -> dict:
-    """Print-preparation, length-scale and structural figures of a result's physical density."""
+def measure(result, problem):
+    """``result`` with its :class:`~topopt.driver.Metrics` filled in (the one place they are measured).
+
+    Print-preparation, length-scale and structural figures of the physical density. A
+    result that carries its figures already is returned as it is, so measuring twice
+    costs nothing; studies measure in the worker that ran the case.
+
+    Examples
+    --------
+    >>> from topopt.driver import optimize
+    >>> from topopt.problem import load_problem, with_settings
+    >>> beam = with_settings(load_problem("examples/mbb-beam.toml"), {"optimize.max_iterations": 2})
+    >>> result = measure(optimize(beam), beam)
+    >>> result.metrics.unsupported_elements is None  # no build direction
+    True
+    >>> measure(result, beam) is result
+    True
+    """
+    import dataclasses
+
+    from topopt.driver import Metrics
     from topopt.export import length_scale_summary, printability_summary, structural_summary_of
 
-    return {**printability_summary(result.density, problem, result),
-            **length_scale_summary(result.density, problem),
-            **structural_summary_of(result.density, problem)}
+    if result.metrics is not None:
+        return result
+    figures = {**printability_summary(result.density, problem, result),
+               **length_scale_summary(result.density, problem),
+               **structural_summary_of(result.density, problem)}
+    if figures["build_vector"] is not None:
+        figures["build_vector"] = tuple(figures["build_vector"])
+    figures["load_cases"] = tuple(figures["load_cases"])
+    return dataclasses.replace(result, metrics=Metrics(**figures))
 
 
 # ---------------------------------------------------------------------------- reading

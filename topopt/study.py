@@ -366,7 +366,8 @@ def run_case(problem_table: Mapping, *, source: str, single_thread: bool = True)
     """Optimise one case; runs in a worker process (local pool or Dask worker).
 
     Takes the problem as plain data so it can travel to a remote worker, and never
-    raises for a failed optimisation: it returns ``{"result": Result}`` or
+    raises for a failed optimisation: it returns ``{"result": Result}`` (its metrics
+    measured here, in the worker, by :func:`topopt.results.measure`) or
     ``{"error": "one line"}``.
 
     Examples
@@ -381,13 +382,14 @@ def run_case(problem_table: Mapping, *, source: str, single_thread: bool = True)
 
     from topopt.driver import optimize
     from topopt.parallel import single_thread as one_thread
+    from topopt.results import measure
 
     try:
         problem = problem_from_dict(problem_table, source=source)
         # Several cases run side by side: one BLAS / OpenMP thread each, or they fight
         # over the cores (the limit takes effect when created, so create it here).
         with one_thread() if single_thread else contextlib.nullcontext():
-            return {"result": optimize(problem)}
+            return {"result": measure(optimize(problem), problem)}
     except Exception as exc:  # noqa: BLE001 - a failed case must not stop the study
         return {"error": _one_line(exc)}
 
@@ -447,6 +449,12 @@ def _run_dask(
                                        host="127.0.0.1", dashboard_address=None,
                                        protocol="tls://", security=security)
             client = Client(cluster, security=security)
+            # the workers are this process's children (their nannies run here): they end
+            # with it however it ends. distributed watches a pipe from the parent too;
+            # with that watch disabled the workers outlived a kill -9 and this ended them
+            from topopt.parallel import die_with_parent
+
+            client.run(die_with_parent, os.getpid())
         else:
             try:
                 client = Client(scheduler, timeout=15)

@@ -16,49 +16,17 @@ from __future__ import annotations
 
 import shutil
 import struct
-import time
 import tracemalloc
 from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import SMALL, write_problem
+from helpers import refused as check_refused
 
 from topopt.cli import main
 from topopt.memory import estimate_memory
 from topopt.problem import MAX_DEPTH, ProblemError, problem_from_dict, read_toml
-
-SMALL = """\
-name = "small plate (invented)"
-
-[domain]
-shape = [20, 10]
-element_size = 1.0
-
-[material]
-youngs_modulus = 1000.0
-poisson_ratio = 0.3
-
-[[restraints]]
-where = { x = [0.0, 0.0] }
-
-[[loads]]
-where = { x = [20.0, 20.0], y = [0.0, 0.0] }
-force = [0.0, -1.0]
-
-[optimize]
-volume_fraction = 0.4
-max_iterations = 4
-"""
-
-
-def snapshot(folder: Path) -> dict:
-    """Every file under ``folder`` (and the folder's siblings) with bytes and mtime."""
-    out = {}
-    for p in sorted(folder.parent.rglob("*")):
-        if p.is_file():
-            out[str(p.relative_to(folder.parent))] = (p.read_bytes(), p.stat().st_mtime_ns)
-    return out
-
 
 #: allocation allowed for refusing an input (generous: parsing and the checks)
 SMALL_AMOUNT = 64 * 2**20
@@ -67,9 +35,8 @@ SMALL_AMOUNT = 64 * 2**20
 @pytest.fixture(scope="module")
 def previous(tmp_path_factory):
     root = tmp_path_factory.mktemp("previous")
-    (root / "small.toml").write_text(SMALL)
     out = root / "runs" / "out"
-    assert main(["optimize", str(root / "small.toml"), "--out", str(out), "--quiet"]) == 0
+    assert main(["optimize", str(write_problem(root)), "--out", str(out), "--quiet"]) == 0
     return out
 
 
@@ -81,36 +48,10 @@ def out(tmp_path, previous):
 
 
 def refused(capsys, argv: list[str], folder: Path, *needles: str, trace: bool = True) -> str:
-    """Exit 2, one line naming needles, folder unchanged, < 5 s, little memory allocated.
-
-    ``trace=False`` skips tracing allocations where tracing itself would take the time
-    (the TOML parser allocates per character).
-    """
-    before = snapshot(folder)
-    if trace:
-        tracemalloc.start()
-    t0 = time.perf_counter()
-    try:
-        code = main(argv)
-        elapsed = time.perf_counter() - t0
-        peak = tracemalloc.get_traced_memory()[1] if trace else 0
-    finally:
-        tracemalloc.stop()
-    err = capsys.readouterr().err
-    assert code == 2, err
-    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err, err
-    for needle in needles:
-        assert needle in err, (needle, err)
-    assert snapshot(folder) == before
-    assert elapsed < 5.0, elapsed
-    assert peak < SMALL_AMOUNT, peak
-    return err
-
-
-def problem_file(tmp_path: Path, text: str) -> Path:
-    path = tmp_path / "bad.toml"
-    path.write_text(text)
-    return path
+    """:func:`helpers.refused` with the small allocation cap (``trace=False`` where tracing
+    itself would take the time: the TOML parser allocates per character)."""
+    return check_refused(capsys, argv, folder, *needles,
+                         max_bytes=SMALL_AMOUNT if trace else None)
 
 
 ABSURD = [
@@ -128,7 +69,7 @@ ABSURD = [
 
 @pytest.mark.parametrize("old, new, key", ABSURD, ids=[a[1].split("\n")[-1] for a in ABSURD])
 def test_finite_but_absurd_numbers(tmp_path, out, capsys, old, new, key):
-    bad = problem_file(tmp_path, SMALL.replace(old, new))
+    bad = write_problem(tmp_path, SMALL.replace(old, new), name="bad.toml")
     refused(capsys, ["optimize", str(bad), "--out", str(out), "--overwrite", "--quiet"], out,
             str(bad), key)
 
@@ -156,15 +97,15 @@ def read_toml_text(text: str) -> dict:
     ("[400, 400, 300]", "domain.shape"),
 ])
 def test_memory_is_budgeted_before_work(tmp_path, out, capsys, shape, key):
-    bad = problem_file(tmp_path, SMALL.replace("shape = [20, 10]", f"shape = {shape}"))
+    bad = write_problem(tmp_path, SMALL.replace("shape = [20, 10]", f"shape = {shape}"), name="bad.toml")
     refused(capsys, ["--max-memory", "8", "optimize", str(bad), "--out", str(out),
                      "--overwrite", "--quiet"], out, str(bad), key)
 
 
 def test_memory_cap_from_the_environment(tmp_path, out, capsys, monkeypatch):
     monkeypatch.setenv("BUTTRESS_MAX_MEMORY", "0.001")
-    bad = problem_file(tmp_path, SMALL.replace("shape = [20, 10]", "shape = [200, 100]")
-                       .replace("x = [20.0, 20.0]", "x = [200.0, 200.0]"))
+    bad = write_problem(tmp_path, SMALL.replace("shape = [20, 10]", "shape = [200, 100]")
+                       .replace("x = [20.0, 20.0]", "x = [200.0, 200.0]"), name="bad.toml")
     refused(capsys, ["optimize", str(bad), "--out", str(out), "--overwrite", "--quiet"], out,
             str(bad), "domain.shape", "BUTTRESS_MAX_MEMORY")
 
@@ -187,8 +128,8 @@ def test_memory_estimate_grows_with_the_problem():
 
 def test_filter_radius_far_beyond_the_domain_runs(tmp_path, capsys):
     # was a 3 GiB allocation; the kernel now stops at the domain's size
-    path = problem_file(tmp_path, SMALL.replace("max_iterations = 4",
-                                                "max_iterations = 2\nfilter_radius = 1e4"))
+    path = write_problem(tmp_path, SMALL.replace("max_iterations = 4",
+                                                "max_iterations = 2\nfilter_radius = 1e4"), name="bad.toml")
     tracemalloc.start()
     try:
         code = main(["optimize", str(path), "--out", str(tmp_path / "o"), "--quiet"])
@@ -200,11 +141,11 @@ def test_filter_radius_far_beyond_the_domain_runs(tmp_path, capsys):
 
 
 def test_nesting_5000_deep(tmp_path, out, capsys):
-    bad = problem_file(tmp_path, SMALL + "\n[extra]\nx = " + "[" * 5000 + "]" * 5000 + "\n")
+    bad = write_problem(tmp_path, SMALL + "\n[extra]\nx = " + "[" * 5000 + "]" * 5000 + "\n", name="bad.toml")
     refused(capsys, ["optimize", str(bad), "--out", str(out), "--overwrite", "--quiet"], out,
             str(bad), "nested")
     # below the parser's limit but deeper than any problem file needs
-    shallow = problem_file(tmp_path, SMALL + "\n[extra]\nx = " + "[" * 40 + "]" * 40 + "\n")
+    shallow = write_problem(tmp_path, SMALL + "\n[extra]\nx = " + "[" * 40 + "]" * 40 + "\n", name="bad.toml")
     with pytest.raises(ProblemError, match=f"deeper than {MAX_DEPTH}"):
         read_toml(shallow, what="a problem file")
 
@@ -218,7 +159,7 @@ def test_study_nested_5000_deep(tmp_path, capsys):
 
 
 def test_two_megabyte_name(tmp_path, out, capsys):
-    bad = problem_file(tmp_path, f'name = "{"n" * 2_000_000}"\n' + SMALL.split("\n", 1)[1])
+    bad = write_problem(tmp_path, f'name = "{"n" * 2_000_000}"\n' + SMALL.split("\n", 1)[1], name="bad.toml")
     refused(capsys, ["optimize", str(bad), "--out", str(out), "--overwrite", "--quiet"], out,
             str(bad), "name", trace=False)
 

@@ -10,25 +10,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from helpers import refused, small_problem, write_problem
 
 from topopt.cli import main
 from topopt.surface import is_closed, isosurface, mesh_volume, read_stl
 
-PROBLEM = """
-[domain]
-shape = [16, 6, 10]
-element_size = 0.5
-[material]
-youngs_modulus = 1000.0
-poisson_ratio = 0.3
-[[restraints]]
-where = { x = [0.0, 0.0] }
-[[loads]]
-where = { x = [8.0, 8.0], z = [0.0, 0.0] }
-force = [0.0, 0.0, -1.0]
-[optimize]
-volume_fraction = 0.4
-"""
+PROBLEM = small_problem((16, 6, 10), element_size=0.5, name="wedge block (invented)")
 
 
 def wedge() -> np.ndarray:
@@ -44,7 +31,7 @@ def test_smoothed_stl_stays_in_the_domain_and_keeps_boundary_faces(tmp_path, pas
     size = np.array([16, 6, 10]) * h
     folder = tmp_path / "run"
     folder.mkdir()
-    (folder / "problem.toml").write_text(PROBLEM)
+    write_problem(folder, PROBLEM, name="problem.toml")
     np.savez(folder / "result.npz", density=wedge(), design=wedge())
     assert main(["export", str(folder), "--format", "stl", "--smooth", str(passes)]) == 0
     v, f = read_stl(folder / "design.stl")  # float32 in the file
@@ -76,12 +63,11 @@ def test_smoothed_stl_stays_in_the_domain_and_keeps_boundary_faces(tmp_path, pas
 def test_export_refuses_to_overwrite(tmp_path, capsys):
     folder = tmp_path / "run"
     folder.mkdir()
-    (folder / "problem.toml").write_text(PROBLEM)
+    write_problem(folder, PROBLEM, name="problem.toml")
     np.savez(folder / "result.npz", density=wedge(), design=wedge())
     assert main(["export", str(folder), "--format", "stl"]) == 0
     before = (folder / "design.stl").read_bytes()
-    assert main(["export", str(folder), "--format", "stl", "--smooth", "5"]) == 2
-    assert "--overwrite" in capsys.readouterr().err
-    assert (folder / "design.stl").read_bytes() == before
+    refused(capsys, ["export", str(folder), "--format", "stl", "--smooth", "5"], folder,
+            "--overwrite")
     assert main(["export", str(folder), "--format", "stl", "--smooth", "5", "--overwrite"]) == 0
     assert (folder / "design.stl").read_bytes() != before

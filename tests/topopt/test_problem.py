@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import refused
 
 from topopt.cli import main
 from topopt.problem import ProblemError, load_problem, problem_from_dict, to_toml
@@ -157,14 +158,6 @@ BAD_FILES = [
 ]
 
 
-def snapshot(folder: Path) -> dict:
-    """Every file below ``folder`` with its bytes and modification time."""
-    return {
-        str(p.relative_to(folder)): (p.read_bytes(), p.stat().st_mtime_ns)
-        for p in sorted(folder.rglob("*")) if p.is_file()
-    }
-
-
 @pytest.fixture(scope="module")
 def results_folder(tmp_path_factory):
     """A finished results folder of the valid base problem."""
@@ -178,16 +171,9 @@ def results_folder(tmp_path_factory):
 
 
 def run_bad(path: Path, out: Path, capsys) -> str:
-    before = snapshot(out)
-    assert before
-    code = main(["optimize", str(path), "--out", str(out), "--overwrite", "--quiet"])
-    captured = capsys.readouterr()
-    assert code == 2, captured
-    assert "Traceback" not in captured.err and "Traceback" not in captured.out
-    lines = captured.err.strip().splitlines()
-    assert len(lines) == 1, captured.err
-    assert snapshot(out) == before
-    return lines[0]
+    assert any(out.iterdir())
+    return refused(capsys, ["optimize", str(path), "--out", str(out), "--overwrite", "--quiet"],
+                   out)
 
 
 @pytest.mark.parametrize(("change", "key"), [c[1:] for c in BAD_FILES],

@@ -17,41 +17,20 @@ import tomllib
 from pathlib import Path
 
 import pytest
+from helpers import small_problem, write_problem
 
 from topopt.driver import optimize
 from topopt.problem import load_problem, problem_from_dict, to_toml, with_settings
 
 ROOT = Path(__file__).resolve().parents[2]
 
-PLATE = """\
-name = "plate (invented)"
-
-[domain]
-shape = [12, 6]
-element_size = 1
-
-[material]
-youngs_modulus = 1000.0
-poisson_ratio = 0.3
-
-[[restraints]]
-where = { x = [0.0, 0.0] }
-
-[[loads]]
-where = { x = [12.0, 12.0], y = [0.0, 0.0] }
-force = [0.0, -1.0]
-
-[optimize]
-volume_fraction = 0.4
-max_iterations = 3
-"""
+#: element_size stays the integer 1 in the file (nothing may respell it)
+PLATE = small_problem((12, 6), element_size=1, max_iterations=3, name="plate (invented)")
 
 
 @pytest.fixture
 def problem(tmp_path):
-    path = tmp_path / "plate.toml"
-    path.write_text(PLATE)
-    return load_problem(path)
+    return load_problem(write_problem(tmp_path, PLATE, name="plate.toml"))
 
 
 def test_table_of_an_unchanged_problem_is_the_file(problem):
@@ -118,8 +97,7 @@ state = "void"
 
 
 def test_passive_void_cutting_the_load_path_is_a_warning(tmp_path):
-    path = tmp_path / "cut.toml"
-    path.write_text(CUT)
+    path = write_problem(tmp_path, CUT, name="cut.toml")
     with pytest.warns(UserWarning, match=r"loads\[0\].where: passive void cuts"):
         load_problem(path)
     # the command runs (valid input) and says so in one line
@@ -136,9 +114,8 @@ def test_passive_void_cutting_the_load_path_is_a_warning(tmp_path):
 def test_no_warning_when_the_load_path_is_whole(tmp_path):
     import warnings
 
-    path = tmp_path / "whole.toml"
-    path.write_text(PLATE + '\n[[passive]]\nwhere = { x = [5.0, 7.0], y = [0.0, 3.0] }\n'
-                    'state = "void"\n')
+    path = write_problem(tmp_path, PLATE + '\n[[passive]]\nwhere = { x = [5.0, 7.0], y = [0.0, 3.0] }\n'
+                         'state = "void"\n', name="whole.toml")
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         load_problem(path)

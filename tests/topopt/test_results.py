@@ -12,6 +12,7 @@ Sources
 
 from __future__ import annotations
 
+import contextlib
 import os
 import random
 import shutil
@@ -19,11 +20,13 @@ import signal
 import subprocess
 import sys
 import time
+import tomllib
 import zipfile
 from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import SMALL, refused, write_problem
 
 from topopt.cli import main
 from topopt.results import (
@@ -37,44 +40,10 @@ from topopt.results import (
 
 ROOT = Path(__file__).resolve().parents[2]
 
-SMALL = """\
-name = "small plate (invented)"
-
-[domain]
-shape = [20, 10]
-element_size = 1.0
-
-[material]
-youngs_modulus = 1000.0
-poisson_ratio = 0.3
-
-[[restraints]]
-where = { x = [0.0, 0.0] }
-
-[[loads]]
-where = { x = [20.0, 20.0], y = [0.0, 0.0] }
-force = [0.0, -1.0]
-
-[optimize]
-volume_fraction = 0.4
-max_iterations = 4
-"""
-
-
-def snapshot(folder: Path) -> dict:
-    """Every file under ``folder`` (and the folder's siblings) with bytes and mtime."""
-    out = {}
-    for p in sorted(folder.parent.rglob("*")):
-        if p.is_file():
-            out[str(p.relative_to(folder.parent))] = (p.read_bytes(), p.stat().st_mtime_ns)
-    return out
-
-
 @pytest.fixture(scope="module")
 def finished_folder(tmp_path_factory):
     root = tmp_path_factory.mktemp("results")
-    problem = root / "small.toml"
-    problem.write_text(SMALL)
+    problem = write_problem(root)
     out = root / "out"
     assert main(["optimize", str(problem), "--out", str(out), "--quiet"]) == 0
     return problem, out
@@ -89,28 +58,11 @@ def finished(tmp_path, finished_folder):
     return tmp_path / "small.toml", tmp_path / "runs" / "out"
 
 
-def refused(capsys, argv, folder: Path, *needles: str) -> str:
-    """Run ``main(argv)``; assert exit 2, one line naming needles, folder untouched, < 5 s."""
-    before = snapshot(folder)
-    t0 = time.perf_counter()
-    code = main(argv)
-    elapsed = time.perf_counter() - t0
-    err = capsys.readouterr().err
-    assert code == 2, err
-    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err, err
-    for needle in needles:
-        assert needle in err, (needle, err)
-    assert snapshot(folder) == before
-    assert elapsed < 5.0, elapsed
-    return err
-
-
 # ---------------------------------------------------------------------------- refusals
 
 
 def test_users_own_files_are_not_replaced_without_overwrite(tmp_path, capsys):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL)
+    problem = write_problem(tmp_path)
     out = tmp_path / "runs" / "mine"
     out.mkdir(parents=True)
     (out / "design.png").write_bytes(b"the user's own picture")
@@ -130,37 +82,42 @@ def test_finished_results_are_kept_without_overwrite(finished, capsys):
             str(out), "--overwrite")
 
 
-def test_unwritable_target_is_refused_before_the_run(tmp_path, capsys):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 5000"))
-    parent = tmp_path / "locked"
-    parent.mkdir()
+@contextlib.contextmanager
+def unwritable(folder: Path):
+    """``folder`` cannot be written while the block runs (skips the test where impossible)."""
     if os.geteuid() == 0:
         # root writes through permission bits; the immutable flag stops root as well
         if shutil.which("chattr") is None or subprocess.run(
-                ["chattr", "+i", str(parent)], capture_output=True).returncode != 0:
+                ["chattr", "+i", str(folder)], capture_output=True).returncode != 0:
             pytest.skip("cannot make a folder unwritable for root here (no chattr +i)")
     else:
-        parent.chmod(0o555)
+        folder.chmod(0o555)
     try:
+        yield
+    finally:
+        if os.geteuid() == 0:
+            subprocess.run(["chattr", "-i", str(folder)], check=True)
+        else:
+            folder.chmod(0o755)
+
+
+def test_unwritable_target_is_refused_before_the_run(tmp_path, capsys):
+    problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 5000"))
+    parent = tmp_path / "locked"
+    parent.mkdir()
+    with unwritable(parent):
         t0 = time.perf_counter()
         code = main(["optimize", str(problem), "--out", str(parent / "out"), "--quiet"])
         err = capsys.readouterr().err
         # refused at once (5000 iterations would take minutes), one line naming the folder
         assert code == 2 and time.perf_counter() - t0 < 5.0
         assert len(err.strip().splitlines()) == 1 and str(parent / "out") in err, err
-    finally:
-        if os.geteuid() == 0:
-            subprocess.run(["chattr", "-i", str(parent)], check=True)
-        else:
-            parent.chmod(0o755)
     assert list(parent.iterdir()) == []
 
 
 def test_a_second_writer_is_refused_at_once(tmp_path, capsys):
     out = tmp_path / "out"
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL)
+    problem = write_problem(tmp_path)
     with folder_lock(out):
         t0 = time.perf_counter()
         code = main(["optimize", str(problem), "--out", str(out), "--quiet"])
@@ -174,9 +131,8 @@ def test_a_second_writer_is_refused_at_once(tmp_path, capsys):
 
 
 def test_two_concurrent_processes_one_is_refused(tmp_path):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 60")
-                       .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
+    problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 60")
+                                      .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
     out = tmp_path / "out"
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     cmd = [sys.executable, "-m", "topopt.cli", "optimize", str(problem), "--out", str(out),
@@ -218,8 +174,8 @@ def test_kill_during_writing_leaves_the_old_or_the_new_folder(tmp_path, finished
     # kill -9 at a random moment of writing an --overwrite run, many times: the folder
     # must always read back complete, either the old run (4 iterations) or the new (3)
     problem, out = finished
-    new_problem = tmp_path / "new.toml"
-    new_problem.write_text(SMALL.replace("max_iterations = 4", "max_iterations = 3"))
+    new_problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 3"),
+                                name="new.toml")
     script = tmp_path / "kill_writer.py"
     script.write_text(KILL_SCRIPT)
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
@@ -384,8 +340,7 @@ def test_hand_made_checkpoint_is_one_line_naming_the_entry(tmp_path, finished, c
 
 
 def test_compare_and_sweep_refuse_a_folder_being_written(tmp_path, capsys):
-    problem = tmp_path / "small.toml"
-    problem.write_text(SMALL)
+    problem = write_problem(tmp_path)
     study = tmp_path / "study.toml"
     study.write_text('problem = "small.toml"\n[vary]\n"optimize.volume_fraction" = [0.3, 0.4]\n')
     for argv, out in ((["compare", str(problem), "--directions", "+y"], tmp_path / "cmp"),
@@ -397,3 +352,117 @@ def test_compare_and_sweep_refuse_a_folder_being_written(tmp_path, capsys):
             assert code == 2 and time.perf_counter() - t0 < 5.0, err
             assert "another buttress run" in err and len(err.strip().splitlines()) == 1
         assert not out.exists()
+
+
+# ---------------------------------------------------------------------------- metrics
+
+
+def plain(value):
+    """A metric as ``summary.json`` holds it: tuples as lists, NaN as null (DESIGN.md)."""
+    if isinstance(value, (tuple, list)):
+        return [plain(v) for v in value]
+    if isinstance(value, dict):
+        return {k: plain(v) for k, v in value.items()}
+    if isinstance(value, float) and not np.isfinite(value):
+        return None
+    return value
+
+
+@pytest.mark.parametrize("direction", ["+y", "none"])
+def test_written_summary_is_the_results_own_metrics(tmp_path, monkeypatch, direction):
+    import dataclasses
+
+    import topopt.export
+    from topopt.driver import optimize
+    from topopt.problem import problem_from_dict
+    from topopt.results import measure, read_summary, summary_dict, write_results
+
+    table = tomllib.loads(SMALL)
+    table["build"] = {"direction": direction}
+    problem = problem_from_dict(table, source="small.toml")
+    result = optimize(problem)
+    assert result.metrics is None  # the loop itself measures nothing
+    measured = measure(result, problem)
+    metrics = measured.metrics
+    assert measure(measured, problem) is measured
+    if direction == "+y":
+        assert metrics.unsupported_elements is not None and metrics.build_vector == (0.0, 1.0)
+    else:
+        assert metrics.unsupported_elements is None and metrics.support_volume is None
+    # writing reads the figures from the result: measuring again would fail here
+    def measured_again(*args, **kwargs):
+        raise AssertionError("the summary writer measured the result again")
+
+    for name in ("printability_summary", "length_scale_summary", "structural_summary_of"):
+        monkeypatch.setattr(topopt.export, name, measured_again)
+    out = tmp_path / "out"
+    write_results(measured, problem, out, formats=())
+    summary = read_summary(out)
+    figures = metrics.as_dict()
+    assert [f.name for f in dataclasses.fields(metrics)] == list(figures)
+    assert {k: summary[k] for k in figures} == plain(figures)
+    # the figures close the summary, in the dataclass's order (summary.json unchanged)
+    assert list(summary)[-len(figures):] == list(figures)
+    assert summary == plain(summary_dict(measured, problem))
+
+
+# ---------------------------------------------------------------------------- compare
+
+
+def compare_argv(problem: Path, out: Path, *more: str) -> list[str]:
+    return ["compare", str(problem), "--directions", "+y", "--workers", "1", "--out", str(out),
+            "--quiet", *more]
+
+
+def test_two_concurrent_compares_one_is_refused_at_once(tmp_path):
+    problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 120")
+                                      .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
+    out = tmp_path / "cmp"
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    cmd = [sys.executable, "-m", "topopt.cli", *compare_argv(problem, out)]
+    procs = [subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True) for _ in range(2)]
+    ended = {}
+    deadline = time.monotonic() + 600
+    while len(ended) < 2 and time.monotonic() < deadline:
+        for k, p in enumerate(procs):
+            if k not in ended and p.poll() is not None:
+                ended[k] = time.monotonic()
+        time.sleep(0.02)
+    results = [p.communicate(timeout=60) for p in procs]
+    codes = [p.returncode for p in procs]
+    assert sorted(codes) == [0, 2], (codes, results)
+    loser, winner = codes.index(2), codes.index(0)
+    err = results[loser][1]
+    assert "another buttress run" in err and "Traceback" not in err, err
+    assert len(err.strip().splitlines()) == 1, err
+    # refused at once: the loser ended while the winner was still running its cases
+    assert ended[loser] < ended[winner]
+    assert read_results(out / "plus-y").summary["iterations"] == 120
+    assert (out / "comparison.csv").exists()
+
+
+def test_compare_into_a_read_only_location_is_refused_before_any_run(tmp_path, capsys):
+    problem = write_problem(tmp_path, SMALL.replace("max_iterations = 4", "max_iterations = 5000")
+                                      .replace("[optimize]", "[optimize]\nchange_tolerance = 1e-9"))
+    parent = tmp_path / "locked"
+    parent.mkdir()
+    with unwritable(parent):
+        refused(capsys, compare_argv(problem, parent / "cmp"), parent, str(parent / "cmp"),
+                "cannot write")
+    assert list(parent.iterdir()) == []
+
+
+@pytest.mark.parametrize("own", ["notes.txt", "comparison.png", "none/design.png",
+                                 "plus-y/problem.toml"])
+def test_compare_never_replaces_the_users_own_files_without_overwrite(tmp_path, capsys, own):
+    problem = write_problem(tmp_path)
+    out = tmp_path / "runs" / "cmp"
+    (out / own).parent.mkdir(parents=True, exist_ok=True)
+    (out / own).write_bytes(b"the user's own file")
+    refused(capsys, compare_argv(problem, out), out, str(out), "--overwrite")
+    # with --overwrite the comparison is written; files that are not its own are kept
+    (out / "keep.txt").write_text("keep")
+    assert main(compare_argv(problem, out, "--overwrite")) == 0
+    assert (out / "keep.txt").read_text() == "keep"
+    assert (out / "comparison.csv").exists() and (out / "plus-y" / "summary.json").exists()

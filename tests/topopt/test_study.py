@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import TINY, write_study
 
 from topopt import study
 from topopt.cli import main
@@ -26,27 +27,7 @@ from topopt.problem import to_toml
 
 REPO = Path(__file__).resolve().parents[2]
 
-TINY = {
-    "name": "tiny cantilever",
-    "domain": {"shape": [24, 12], "element_size": 1.0},
-    "material": {"youngs_modulus": 1.0, "poisson_ratio": 0.3},
-    "restraints": [{"where": {"x": [0.0, 0.0]}, "fix": ["x", "y"]}],
-    "loads": [{"where": {"x": [24.0, 24.0], "y": [6.0, 6.0]}, "force": [0.0, -1.0]}],
-    "optimize": {"volume_fraction": 0.4, "filter_radius": 1.5, "max_iterations": 15},
-}
-
 FOUR = {"optimize.volume_fraction": [0.35, 0.5], "optimize.filter_radius": [1.5, 2.0]}
-
-
-def write_study(folder: Path, vary: dict, *, iterations: int = 15) -> Path:
-    problem = copy.deepcopy(TINY)
-    problem["optimize"]["max_iterations"] = iterations
-    (folder / "tiny.toml").write_text(to_toml(problem))
-    lines = ['problem = "tiny.toml"', "[vary]"]
-    lines += [f'"{k}" = {json.dumps(v)}' for k, v in vary.items()]
-    path = folder / "study.toml"
-    path.write_text("\n".join(lines) + "\n")
-    return path
 
 
 def read_table(path: Path) -> list[dict]:
@@ -289,3 +270,30 @@ def test_bundled_overhang_study_is_valid_and_runs_on_a_coarse_grid(tmp_path):
     rows = study.run(data, out_dir=tmp_path / "out", workers=1)
     assert len(rows) == 8 and all(r["status"] == "ok" for r in rows), rows
     assert (tmp_path / "out" / "study.png").stat().st_size > 0
+
+
+def test_cases_are_measured_once_in_the_runner_and_the_summary_holds_it(tmp_path, monkeypatch):
+    # the case's figures are measured with its result (in the worker) and written as they
+    # are: one measurement per case, and summary.json holds the result's own metrics
+    import topopt.export
+    from topopt.results import read_summary
+
+    path = write_study(tmp_path, {"build.direction": ["+y", "none"]}, iterations=4)
+    measured = []
+    real = topopt.export.printability_summary
+    monkeypatch.setattr(topopt.export, "printability_summary",
+                        lambda *a, **k: measured.append(1) or real(*a, **k))
+    results = {}
+    real_run_case = study.run_case
+    monkeypatch.setattr(study, "run_case", lambda table, **k: results.setdefault(
+        table.get("build", {}).get("direction", "none"), real_run_case(table, **k)))
+    rows = study.run(path, out_dir=tmp_path / "out", workers=1)
+    assert len(measured) == 2
+    for row in rows:
+        metrics = results[row["build.direction"]]["result"].metrics
+        summary = read_summary(tmp_path / "out" / "cases" / row["case"])
+        assert summary["unsupported_elements"] == metrics.unsupported_elements
+        assert summary["support_volume"] == metrics.support_volume
+        assert row["unsupported_elements"] == metrics.unsupported_elements
+    assert {r["build.direction"]: r["unsupported_elements"] is None for r in rows} == {
+        "+y": False, "none": True}

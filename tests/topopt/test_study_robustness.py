@@ -12,9 +12,7 @@ Sources
 from __future__ import annotations
 
 import contextlib
-import copy
 import gc
-import json
 import os
 import signal
 import subprocess
@@ -23,36 +21,18 @@ import time
 from pathlib import Path
 
 import pytest
+from helpers import write_study
 
 from topopt import study
-from topopt.problem import to_toml
 
 REPO = Path(__file__).resolve().parents[2]
-
-TINY = {
-    "name": "tiny cantilever (invented)",
-    "domain": {"shape": [24, 12], "element_size": 1.0},
-    "material": {"youngs_modulus": 1.0, "poisson_ratio": 0.3},
-    "restraints": [{"where": {"x": [0.0, 0.0]}, "fix": ["x", "y"]}],
-    "loads": [{"where": {"x": [24.0, 24.0], "y": [6.0, 6.0]}, "force": [0.0, -1.0]}],
-    "optimize": {"volume_fraction": 0.4, "filter_radius": 1.5, "max_iterations": 8},
-}
-
-
-def write_study(folder: Path, vary: dict, *, iterations: int = 8) -> Path:
-    problem = copy.deepcopy(TINY)
-    problem["optimize"]["max_iterations"] = iterations
-    problem["optimize"]["change_tolerance"] = 1e-9
-    (folder / "tiny.toml").write_text(to_toml(problem))
-    lines = ['problem = "tiny.toml"', "[vary]"]
-    lines += [f'"{k}" = {json.dumps(v)}' for k, v in vary.items()]
-    path = folder / "study.toml"
-    path.write_text("\n".join(lines) + "\n")
-    return path
+#: a change tolerance no case reaches: every case runs all its iterations
+NEVER = 1e-9
 
 
 def test_damaged_finished_cases_are_failed_and_rerun(tmp_path, monkeypatch):
-    path = write_study(tmp_path, {"optimize.volume_fraction": [0.3, 0.4, 0.5, 0.6]})
+    path = write_study(tmp_path, {"optimize.volume_fraction": [0.3, 0.4, 0.5, 0.6]},
+                       iterations=8, change_tolerance=NEVER)
     out = tmp_path / "out"
     first = study.run(path, out_dir=out, workers=1)
     assert [r["status"] for r in first] == ["ok"] * 4
@@ -78,7 +58,8 @@ def test_two_and_two_point_zero_are_one_case(tmp_path):
     b = study.case_id({"optimize": {"penalty": 2.0}}, {"optimize.penalty": 2.0})
     assert a == b
     assert a != study.case_id({"optimize": {"penalty": 2.5}}, {"optimize.penalty": 2.5})
-    path = write_study(tmp_path, {"optimize.penalty": [2, 3, 2.0]})
+    path = write_study(tmp_path, {"optimize.penalty": [2, 3, 2.0]}, iterations=8,
+                       change_tolerance=NEVER)
     with pytest.raises(study.StudyError, match="appears twice"):
         study.load_study(path)
 
@@ -101,15 +82,32 @@ def session_processes(sid: int) -> dict[int, tuple[int, str]]:
     return found
 
 
+def _dask_available() -> bool:
+    try:
+        import cryptography  # noqa: F401
+        import distributed  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc")
 @pytest.mark.parametrize("signum", [signal.SIGKILL, signal.SIGTERM], ids=["SIGKILL", "SIGTERM"])
-def test_killed_sweep_leaves_no_worker_behind(tmp_path, signum):
+@pytest.mark.parametrize("runner", [
+    "pool",
+    pytest.param("dask", marks=pytest.mark.skipif(not _dask_available(),
+                                                  reason="needs distributed and cryptography")),
+])
+def test_killed_sweep_leaves_no_worker_behind(tmp_path, signum, runner):
+    # pool: the sweep's own worker processes (topopt.parallel); dask: the local cluster's
+    # worker processes (spawned by its nannies, which run inside the sweep) and
+    # multiprocessing's resource tracker
     path = write_study(tmp_path, {"optimize.volume_fraction": [0.3, 0.35, 0.4, 0.45, 0.5, 0.55]},
-                       iterations=2000)
+                       iterations=2000, change_tolerance=NEVER)
     out = tmp_path / "out"
     proc = subprocess.Popen(
         [sys.executable, "-m", "topopt.cli", "sweep", str(path), "--out", str(out),
-         "--workers", "2", "--quiet"],
+         "--workers", "2", "--quiet", *(["--dask"] if runner == "dask" else [])],
         cwd=REPO, start_new_session=True, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
         env={**os.environ, "PYTHONPATH": str(REPO)})
     sid = proc.pid  # a new session's id is its leader's pid
@@ -124,7 +122,8 @@ def test_killed_sweep_leaves_no_worker_behind(tmp_path, signum):
             assert proc.poll() is None, proc.stderr.read().decode()
             assert time.monotonic() < deadline, "workers did not start within 120 s"
             time.sleep(0.05)
-        time.sleep(1.0)  # let the workers take up their cases
+        # let the workers take up their cases (a Dask worker first imports and connects)
+        time.sleep(1.0 if runner == "pool" else 5.0)
         proc.send_signal(signum)  # the sweep only, not its workers
         proc.wait(timeout=60)
         deadline = time.monotonic() + 15

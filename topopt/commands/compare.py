@@ -45,19 +45,18 @@ def run(args: argparse.Namespace) -> int:
     """Run ``buttress compare``."""
     from topopt.compare import compare
     from topopt.problem import load_problem
-    from topopt.results import check_writable, folder_lock
 
     problem = load_problem(args.problem)
-    check_writable(args.out)  # before any run, not after the last
-    with folder_lock(args.out):  # a second compare into the same folder is refused at once
-        rows = compare(
-            problem,
-            directions=args.directions,
-            out_dir=args.out,
-            workers=args.workers,
-            progress=not args.quiet,
-            overwrite=args.overwrite,
-        )
+    # compare checks --out (writable, not locked by another run, nothing of the user's
+    # own without --overwrite) before any run
+    rows = compare(
+        problem,
+        directions=args.directions,
+        out_dir=args.out,
+        workers=args.workers,
+        progress=not args.quiet,
+        overwrite=args.overwrite,
+    )
     if not args.quiet:
         print(f"{'direction':>18} {'compliance':>12} {'increase %':>10} {'unsupported':>11}"
               f" {'of them keep-in':>15} {'support':>9} {'free design':>11}")
