@@ -420,3 +420,49 @@ def test_driver_appends_printability_filter_last():
     assert free.optimize.move_limit == 0.2
     assert built.optimize.move_limit == 0.05
     assert with_settings(built, {"optimize.move_limit": 0.3}).optimize.move_limit == 0.3
+
+
+def test_compare_search_optimises_the_best_ranked_directions(tmp_path, capsys):
+    # compare --search: the free design first, then inspect's orientation search of it,
+    # then self-supporting runs for the best-ranked directions at least 15 degrees apart
+    # (a direction within 5 degrees of an axis runs along the axis)
+    from topopt.compare import AXIS_SNAP_DEG, SEARCH_SEPARATION_DEG
+
+    problem = _write_small(tmp_path, iterations=8)
+    out = tmp_path / "cmp"
+    code = main(["compare", str(problem), "--out", str(out), "--search", "12", "--best", "2",
+                 "--workers", "1", "--quiet"])
+    assert code == 0
+    report = json.loads((out / "search" / "inspect.json").read_text())
+    ranked = sorted(report["directions"], key=lambda r: r["rank"])
+    assert len(ranked) > 12 and (out / "search" / "inspect.png").stat().st_size > 0
+    with open(out / "comparison.csv", newline="") as f:
+        rows = list(csv.DictReader(f))
+    assert [r["direction"] for r in rows][0] == "none" and len(rows) == 3
+    axes = {"+x": (1.0, 0.0), "-x": (-1.0, 0.0), "+y": (0.0, 1.0), "-y": (0.0, -1.0)}
+    expected, taken = [], []
+    for r in ranked:  # the rule written out again
+        v, label = np.array(r["vector"]), r["direction"]
+        for name, a in axes.items():
+            if v @ np.array(a) >= np.cos(np.radians(AXIS_SNAP_DEG)):
+                v, label = np.array(a), name
+        if all(v @ w <= np.cos(np.radians(SEARCH_SEPARATION_DEG)) for w in taken):
+            taken.append(v)
+            expected.append(label)
+    assert [r["direction"] for r in rows[1:]] == expected[:2]
+    for r in rows[1:]:
+        assert (out / r["results"] / "summary.json").exists()
+
+
+@pytest.mark.parametrize("extra,message", [
+    (["--search", "12", "--directions", "+x"], "exclude each other"),
+    (["--best", "2"], "--best needs --search"),
+    (["--search", "12", "--best", "11"], "--best"),
+])
+def test_compare_search_bad_options_are_one_line(tmp_path, capsys, extra, message):
+    problem = _write_small(tmp_path)
+    out = tmp_path / "cmp"
+    code = main(["compare", str(problem), "--out", str(out), *extra])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and message in err
+    assert not out.exists()

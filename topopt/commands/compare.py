@@ -30,6 +30,23 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "by spaces, e.g. --directions '-x,+y,1 1' (default: all axis directions)",
     )
     parser.add_argument(
+        "--search",
+        type=positive_int,
+        default=None,
+        metavar="N",
+        help="instead of --directions: optimise the free design, search N orientations of "
+        "it (as inspect --search; report in OUT/search/) and optimise self-supporting designs "
+        "for the best-ranked ones",
+    )
+    parser.add_argument(
+        "--best",
+        type=positive_int,
+        default=None,
+        metavar="K",
+        help="with --search: how many of the best-ranked directions to optimise, at least "
+        "15 degrees apart (default 3, at most 10)",
+    )
+    parser.add_argument(
         "--workers",
         type=positive_int,
         default=None,
@@ -46,6 +63,8 @@ def run(args: argparse.Namespace) -> int:
     from topopt.compare import compare
     from topopt.problem import load_problem
 
+    if args.best is not None and args.search is None:
+        raise ValueError("--best needs --search")
     problem = load_problem(args.problem)
     # compare checks --out (writable, not locked by another run, nothing of the user's
     # own without --overwrite) before any run
@@ -56,6 +75,8 @@ def run(args: argparse.Namespace) -> int:
         workers=args.workers,
         progress=not args.quiet,
         overwrite=args.overwrite,
+        search=args.search,
+        best=3 if args.best is None else args.best,
     )
     if not args.quiet:
         print(f"{'direction':>18} {'compliance':>12} {'increase %':>10} {'unsupported':>11}"
