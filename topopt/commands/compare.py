@@ -6,7 +6,9 @@ results folder (none, plus-x, minus-x, ...). OUT/comparison.csv has one row per 
 (compliance, its increase over the free design in percent, volume fraction, unsupported
 elements, overhang area, grey level, time) and OUT/comparison.png shows the designs
 with the build plate drawn on each and a bar chart of the compliance increase. Runs go
-in parallel up to the number of cores (one BLAS thread each).
+in parallel up to the number of cores (one BLAS thread each). With --search N the
+directions come from an orientation search of the free design (as inspect --search;
+report in OUT/search/): the --best K best-ranked, at least 15 degrees apart.
 """
 
 from __future__ import annotations
