@@ -122,8 +122,6 @@ def compare(
     workers: int | None = None,
     progress: bool = False,
     overwrite: bool = False,
-    search: int | None = None,
-    best: int = 3,
 ) -> list[dict]:
     """Optimise ``problem`` free and for each build direction; write the comparison.
 
@@ -131,9 +129,12 @@ def compare(
     ----------
     problem : Problem
         The problem; its own ``[build] direction`` is ignored, its overhang angle used.
-    directions : sequence of str or str, optional
+    directions : sequence of str, str or callable, optional
         Build directions to run besides the free design (``"none"``), e.g.
         ``["+x", "-y"]`` or ``"+x,-y"``. Default: every axis direction of the domain.
+        A callable is given the free design's results folder once that run is done and
+        returns the directions (``buttress compare --search`` passes an orientation
+        search of the free design this way).
     out_dir : str or Path
         Folder for ``comparison.csv``, ``comparison.png`` and one results folder per
         run (``none``, ``plus-x``, ``minus-y`` ...).
@@ -144,13 +145,6 @@ def compare(
     overwrite : bool
         Replace a comparison already in ``out_dir`` (files that are not the comparison's
         are kept); otherwise a folder holding anything is an error.
-    search : int, optional
-        Instead of ``directions``: optimise the free design first, search ``search``
-        orientations of it as ``buttress inspect --search`` does (report in
-        ``out_dir/search/``), and run self-supporting designs for the ``best``
-        best-ranked directions at least 15 degrees apart.
-    best : int
-        How many searched directions to optimise (with ``search``), 1 to 10.
 
     Returns
     -------
@@ -175,23 +169,18 @@ def compare(
     """
     from topopt.results import check_writable, folder_lock
 
-    if search is not None:
-        if directions is not None:
-            raise ValueError("--search and --directions exclude each other")
-        if isinstance(search, bool) or not isinstance(search, int) or not 1 <= search <= 5000:
-            raise ValueError(f"--search: expected 1 to 5000 directions, got {search!r}")
-        if isinstance(best, bool) or not isinstance(best, int) or not 1 <= best <= 10:
-            raise ValueError(f"--best: expected 1 to 10 directions, got {best!r}")
-        runs = ["none"]
+    if callable(directions):
+        runs = ["none"]  # the rest once the free design is known
+        n_workers = _check_workers(workers, os.cpu_count() or 1)
     else:
         runs = ["none"] + _check_directions(directions, problem.grid.dim)
-    n_workers = _check_workers(workers, len(runs) if search is None else 1 + best)
+        n_workers = _check_workers(workers, len(runs))
     out = Path(out_dir)
     check_writable(out)  # before any run, not after the last
     with folder_lock(out):  # a second comparison into the same folder is refused at once
         check_output(out, runs, overwrite=overwrite)
         return _compare(problem, runs, out, n_workers=n_workers, progress=progress,
-                        search=search, best=best)
+                        then=directions if callable(directions) else None)
 
 
 def check_output(out: Path, runs: list, *, overwrite: bool) -> None:
@@ -213,7 +202,7 @@ def check_output(out: Path, runs: list, *, overwrite: bool) -> None:
 
 
 def _compare(problem, runs: list, out: Path, *, n_workers: int, progress: bool,
-             search: int | None = None, best: int = 3) -> list[dict]:
+             then=None) -> list[dict]:
     """Run the comparison into ``out`` (checked and locked by :func:`compare`)."""
     from topopt.export import write_csv
     from topopt.study import read_density
@@ -234,17 +223,16 @@ def _compare(problem, runs: list, out: Path, *, n_workers: int, progress: bool,
     out.mkdir(parents=True, exist_ok=True)
     summaries: dict[str, dict] = {}
     t0 = time.perf_counter()
-    if search is None:
+    if then is None:
         _run_directions(problem, runs, shared, out, summaries, n_workers=n_workers,
                         progress=progress, t0=t0, total=len(runs))
-    else:
-        total = 1 + best
+    else:  # the free design first; the directions follow from it
         _run_directions(problem, ["none"], shared, out, summaries, n_workers=1,
-                        progress=progress, t0=t0, total=total)
-        found = searched_directions(out / "none", out / "search", search, best,
-                                    problem.grid.dim, quiet=not progress)
-        _run_directions(problem, found, shared, out, summaries, n_workers=n_workers,
-                        progress=progress, t0=t0, total=total)
+                        progress=progress, t0=t0, total=1)
+        found = _check_directions(list(then(out / "none")), problem.grid.dim)
+        _run_directions(problem, found, shared, out, summaries,
+                        n_workers=min(n_workers, len(found)), progress=progress, t0=t0,
+                        total=1 + len(found))
         runs = ["none"] + found
 
     densities = {d: read_density(out / folder_name(d)) for d in runs}  # keys: run order
@@ -284,68 +272,6 @@ def _run_directions(problem, runs: list, shared: dict, out: Path, summaries: dic
                 file=sys.stderr,
                 flush=True,
             )
-
-
-#: Smallest angle between two searched directions that ``compare --search`` optimises:
-#: the refinement caps of the search put many near-copies of the best direction at the
-#: top of the ranking, and designs a few degrees apart teach the user nothing new.
-SEARCH_SEPARATION_DEG = 15.0
-
-#: A searched direction this close to an axis is optimised along the axis. The
-#: optimiser's plate passes through the domain's lowest corner, so a direction a few
-#: degrees off an axis leaves the rest of that face floating above the plate: on the
-#: wall bracket, [-0.026, 0.9997] (1.5 degrees off +y) gave a disconnected design
-#: (compliance 1.6e7, 312 keep-in elements that no design could hold) where +y gives
-#: 254, and [0.9997, -0.026] gave 1343 where +x gives 245 (measured).
-AXIS_SNAP_DEG = 5.0
-
-
-def searched_directions(free: Path, report: Path, count: int, best: int, ndim: int, *,
-                        quiet: bool = False) -> list:
-    """Search orientations of the free design and return the ``best`` best-ranked.
-
-    Runs ``buttress inspect FREE --search COUNT --out REPORT`` (its report, table and
-    picture stay in ``report``) and takes the best-ranked directions, skipping any within
-    :data:`SEARCH_SEPARATION_DEG` of one already taken; a direction within
-    :data:`AXIS_SNAP_DEG` of an axis is taken as the axis. Axis directions come back as
-    names, others as tuples.
-    """
-    import argparse
-    import contextlib
-    import io
-    import json
-
-    from filters.direction import axis_directions, direction_label, unit_vector
-    from topopt.commands import inspect
-
-    parser = argparse.ArgumentParser()
-    inspect.add_arguments(parser)
-    args = parser.parse_args([str(free), "--out", str(report), "--search", str(count),
-                              "--overwrite"])
-    sink = io.StringIO() if quiet else None
-    with contextlib.redirect_stdout(sink) if sink is not None else contextlib.nullcontext():
-        inspect.run(args)
-    rows = json.loads((report / "inspect.json").read_text())["directions"]
-    rows.sort(key=lambda r: r["rank"])
-    picked: list[np.ndarray] = []
-    out: list = []
-    cos_sep = math.cos(math.radians(SEARCH_SEPARATION_DEG))
-    cos_snap = math.cos(math.radians(AXIS_SNAP_DEG))
-    axes = {name: np.asarray(unit_vector(name, ndim), dtype=float)
-            for name in axis_directions(ndim)}
-    for r in rows:
-        v = np.asarray(r["vector"], dtype=float)
-        near = next((a for a in axes.values() if float(v @ a) >= cos_snap), None)
-        if near is not None:
-            v = near
-        if any(float(v @ w) > cos_sep for w in picked):
-            continue
-        picked.append(v)
-        label = direction_label(v.tolist(), ndim)
-        out.append(label if label in axis_directions(ndim) else tuple(float(c) for c in v))
-        if len(out) == best:
-            break
-    return out
 
 
 def comparison_rows(runs, summaries: dict, densities: dict, problem) -> list[dict]:

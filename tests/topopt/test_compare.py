@@ -426,7 +426,7 @@ def test_compare_search_optimises_the_best_ranked_directions(tmp_path, capsys):
     # compare --search: the free design first, then inspect's orientation search of it,
     # then self-supporting runs for the best-ranked directions at least 15 degrees apart
     # (a direction within 5 degrees of an axis runs along the axis)
-    from topopt.compare import AXIS_SNAP_DEG, SEARCH_SEPARATION_DEG
+    from topopt.commands.compare import AXIS_SNAP_DEG, SEARCH_SEPARATION_DEG
 
     problem = _write_small(tmp_path, iterations=8)
     out = tmp_path / "cmp"
