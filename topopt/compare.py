@@ -448,4 +448,7 @@ def _draw_plate_3d(ax, direction, size) -> None:
         p[others[0]] = u * size[others[0]]
         p[others[1]] = v * size[others[1]]
         corners.append(p)
-    ax.add_collection3d(Poly3DCollection([corners], facecolors="#d9822b", alpha=0.45))
+    # a faint fill with a strong edge: a plate on a face turned to the viewer (+y in the
+    # default view) hid the design behind it at alpha 0.45
+    ax.add_collection3d(Poly3DCollection([corners], facecolors=(0.85, 0.51, 0.17, 0.15),
+                                         edgecolors=(0.85, 0.51, 0.17, 1.0), linewidths=2.0))
