@@ -25,6 +25,8 @@ bench: setup
 	$(BIN)/python benchmarks/iteration.py --report benchmarks/results-2d.json benchmarks/results-3d.json \
 		--notes benchmarks/notes.md --markdown benchmarks/results.md
 	$(BIN)/python benchmarks/startup.py --markdown benchmarks/startup.md
+	$(BIN)/python benchmarks/printability.py --out benchmarks/printability.md
+	$(BIN)/python benchmarks/orientation.py --out benchmarks/orientation.md
 
 clean:
 	rm -rf demo-results .pytest_cache
