@@ -404,6 +404,13 @@ def test_full_bracket_comparison_on_two_cores(tmp_path):
             == 0
         )
         assert unsupported_by_plain_sweep(free, r["direction"]) > 0
+    # issue checks (convergence and supports saved): every run, free one included, ends
+    # converged with grey level below 2 %, and each self-supporting design needs at most
+    # a third of the free design's support in its direction (by inspect's analysis)
+    for r in rows:
+        assert r["converged"] and r["grey_level"] < 0.02, r
+    for r in rows[1:]:
+        assert r["support_volume"] <= r["free_design_support_volume"] / 3.0, r
 
 
 def test_driver_appends_printability_filter_last():
