@@ -423,7 +423,7 @@ def _logical_sweep(solid, order, on_plate, inner, mflat, shape, d, plate, member
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, t, r, ratios):  # noqa: D103
+def _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, ratios):  # noqa: D103
     # every strut's smooth-min fold (foot first, as in the docstring) for the nb elements
     # of a band: folds[c * width + i] ends as the value of the strut in column c. With
     # ratios, also keeps t / r of each smin(a, w) (its derivatives are 0.5 * (1 -+ t / r)).
@@ -477,8 +477,8 @@ def _power_lanes(r, nb, p, p_int, out):  # noqa: D103 - kernel
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _forward_kernel(x, keep, hold, order, bands, on_plate, pidx, under, table, count, column,
-                    lengths, eps, p, p_int, q, val, xi, big, top, psum):  # noqa: D103
+def _forward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, table, count,
+                    column, lengths, eps, p, p_int, q, val, xi, big, top, psum):  # noqa: D103
     # val is the padded grid (see _Smooth): constant 1.0 on or under the plate, 0.0
     # outside the domain, and each element's printed density once it is known. Bands
     # are runs of the height order in which no element reads another: their elements
@@ -489,12 +489,8 @@ def _forward_kernel(x, keep, hold, order, bands, on_plate, pidx, under, table, c
     # scaled P-sum (psum), so that the backward sweep needs no second maximum.
     sq = math.sqrt(eps)
     n_s = column.size
-    width = 1
-    for k in range(bands.size - 1):
-        width = max(width, bands[k + 1] - bands[k])
     folds = np.zeros(max(n_s, 1) * width)
     w = np.zeros(width)
-    t = np.zeros(width)
     pos = np.zeros(width, dtype=np.int64)
     elem = np.zeros(width, dtype=np.int64)
     most = np.zeros(width)
@@ -518,7 +514,7 @@ def _forward_kernel(x, keep, hold, order, bands, on_plate, pidx, under, table, c
             nb += 1
         if nb == 0:
             continue
-        _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, t, r, folds[:0])
+        _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, folds[:0])
         for i in range(nb):
             most[i] = 0.0
             acc[i] = 0.0
@@ -554,8 +550,8 @@ def _forward_kernel(x, keep, hold, order, bands, on_plate, pidx, under, table, c
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _backward_kernel(x, keep, hold, order, bands, on_plate, pidx, under, table, count, column,
-                     lengths, eps, p, p_int, q, val, big, top, psum, seed, lamp, dx):  # noqa: D103
+def _backward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, table, count,
+                     column, lengths, eps, p, p_int, q, val, big, top, psum, seed, lamp, dx):  # noqa: D103
     # lamp is the adjoint on the padded grid; it enters holding the seed at every element
     # not under the plate (under it, an element is read as the constant 1.0, so nothing
     # flows back into it) and is completed in falling height, band by band. A band's
@@ -567,14 +563,9 @@ def _backward_kernel(x, keep, hold, order, bands, on_plate, pidx, under, table, 
     n_s = column.size
     rows = count.size
     n_c = table.shape[1]
-    width = 1
-    for k in range(bands.size - 1):
-        width = max(width, bands[k + 1] - bands[k])
     folds = np.zeros(max(n_s, 1) * width)
     ratios = np.zeros(max(rows * n_c, 1) * width)
     w = np.zeros(width)
-    t = np.zeros(width)
-    rr = np.zeros(width)
     pos = np.zeros(width, dtype=np.int64)
     elem = np.zeros(width, dtype=np.int64)
     coef = np.zeros(width)
@@ -605,7 +596,7 @@ def _backward_kernel(x, keep, hold, order, bands, on_plate, pidx, under, table, 
             nb += 1
         if nb == 0:
             continue
-        _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, t, rr, ratios)
+        _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, ratios)
         for s in range(n_s):
             at = column[s] * width
             for i in range(nb):
@@ -695,6 +686,7 @@ class _Smooth:
     column: np.ndarray  # (struts,): column of strut s in the table
     lengths: np.ndarray  # (struts,): members of strut s
     bands: np.ndarray  # starts of runs of the height order in which no element reads another
+    width: int  # elements in the longest band (the kernels' lane buffers)
 
 
 @numba.njit(cache=True)
@@ -743,7 +735,8 @@ def _smooth_setup(sw: _Sweep) -> _Smooth:
     bands = _band_starts(sw.heights[sw.order], shallowest - 1e-9)
     return _Smooth(pidx=pidx, under=np.ascontiguousarray(below[pidx]),
                    base=np.where(below, 1.0, 0.0), table=table, count=count, column=column,
-                   lengths=lengths, bands=bands)
+                   lengths=lengths, bands=bands,
+                   width=max(1, int(np.diff(bands).max(initial=1))))
 
 
 class PrintabilityFilter:
@@ -804,9 +797,9 @@ class PrintabilityFilter:
 
     def _args(self):
         sw, sm = self._sweep, self._smooth
-        return (self._keep, self.keep_mode == "hold", sw.order, sm.bands, sw.on_plate, sm.pidx,
-                sm.under, sm.table, sm.count, sm.column, sm.lengths, self.epsilon, self.p,
-                self._p_int, self.q)
+        return (self._keep, self.keep_mode == "hold", sw.order, sm.bands, sm.width, sw.on_plate,
+                sm.pidx, sm.under, sm.table, sm.count, sm.column, sm.lengths, self.epsilon,
+                self.p, self._p_int, self.q)
 
     def forward(self, x: np.ndarray) -> np.ndarray:
         """Return the printed density of the blueprint density ``x`` (grid shape)."""
