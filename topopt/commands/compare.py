@@ -146,7 +146,7 @@ def searched_directions(free: Path, report: Path, count: int, best: int, ndim: i
 
     import numpy as np
 
-    from filters.direction import axis_directions, direction_label, unit_vector
+    from filters.direction import axis_directions, unit_vector
     from topopt.commands import inspect
 
     parser = argparse.ArgumentParser()
@@ -166,14 +166,13 @@ def searched_directions(free: Path, report: Path, count: int, best: int, ndim: i
             for name in axis_directions(ndim)}
     for r in rows:
         v = np.asarray(r["vector"], dtype=float)
-        near = next((a for a in axes.values() if float(v @ a) >= cos_snap), None)
-        if near is not None:
-            v = near
+        axis = next((name for name, a in axes.items() if float(v @ a) >= cos_snap), None)
+        if axis is not None:
+            v = axes[axis]
         if any(float(v @ w) > cos_sep for w in picked):
             continue
         picked.append(v)
-        label = direction_label(v.tolist(), ndim)
-        out.append(label if label in axis_directions(ndim) else tuple(float(c) for c in v))
+        out.append(axis if axis is not None else tuple(float(c) for c in v))
         if len(out) == best:
             break
     return out
