@@ -264,6 +264,9 @@ class BetaContinuation:
         Increase early when the change drops below this (0 switches it off).
     min_gap : int
         Fewest iterations at one beta before an early increase.
+    extra_steps : int
+        Further increases past ``beta_max`` that :meth:`extend` may make on request
+        (the optimiser asks when a design still stalls grey at ``beta_max``).
 
     Examples
     --------
@@ -283,6 +286,7 @@ class BetaContinuation:
         factor: float = 2.0,
         stagnation: float = 0.0,
         min_gap: int = 5,
+        extra_steps: int = 0,
     ):
         self.beta_start = _check_beta(beta_start)
         self.beta_max = _check_beta(beta_max)
@@ -296,8 +300,11 @@ class BetaContinuation:
             raise ValueError(f"stagnation must be >= 0, got {stagnation!r}")
         if int(min_gap) != min_gap or min_gap < 1:
             raise ValueError(f"min_gap must be an integer >= 1, got {min_gap!r}")
+        if int(extra_steps) != extra_steps or extra_steps < 0:
+            raise ValueError(f"extra_steps must be an integer >= 0, got {extra_steps!r}")
         self.every = int(every)
         self.factor = float(factor)
+        self.extra_steps = int(extra_steps)
         self.stagnation = float(stagnation)
         self.min_gap = int(min_gap)
         self.beta = self.beta_start
@@ -325,13 +332,29 @@ class BetaContinuation:
         self.since_increase = 0
         return True
 
+    @property
+    def beta_limit(self) -> float:
+        """Largest beta :meth:`extend` may reach."""
+        return self.beta_max * self.factor**self.extra_steps
+
+    def extend(self) -> bool:
+        """Once at ``beta_max``, multiply beta by ``factor`` again if ``extra_steps`` allow.
+
+        Returns True when beta was increased.
+        """
+        if not self.at_max or self.beta * self.factor > self.beta_limit * (1 + 1e-12):
+            return False
+        self.beta *= self.factor
+        self.since_increase = 0
+        return True
+
     def state(self) -> dict:
         """Plain-data state for checkpoints."""
         return {"beta": self.beta, "since_increase": self.since_increase}
 
     def restore(self, state: dict) -> None:
         """Restore from :meth:`state` output."""
-        self.beta = min(max(_check_beta(state["beta"]), self.beta_start), self.beta_max)
+        self.beta = min(max(_check_beta(state["beta"]), self.beta_start), self.beta_limit)
         self.since_increase = int(state["since_increase"])
 
 

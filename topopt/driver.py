@@ -122,7 +122,7 @@ def build_filter_chain(problem, *, eta: float | None = None) -> FilterChain:
                                          overhang_angle=problem.build.overhang_angle,
                                          keep=problem.passive_solid, keep_mode=mode,
                                          plate_offset=problem.build.plate_offset
-                                         / grid.element_size))
+                                         / grid.element_size, p=problem.build.smooth_max_power))
     return FilterChain(links)
 
 
@@ -386,9 +386,15 @@ def optimize(
                     bar.set_postfix(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
                 # with continuation, only a still design at the final beta counts as converged
                 if change < settings.change_tolerance and (schedule is None or schedule.at_max):
-                    converged = True
-                    message = f"converged: largest design change {change:.4g} < {settings.change_tolerance}"
-                    break
+                    if schedule is not None and row["grey_level"] > robust.GREY_TARGET \
+                            and schedule.extend():
+                        # still but grey: not finished; sharpen once more and go on
+                        set_beta(chains, schedule.beta)
+                    else:
+                        converged = True
+                        message = (f"converged: largest design change {change:.4g} < "
+                                   f"{settings.change_tolerance}")
+                        break
                 if schedule is not None and schedule.step(change=change):
                     set_beta(chains, schedule.beta)
                 if schedule is not None:

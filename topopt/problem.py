@@ -120,12 +120,14 @@ class BuildSettings:
     plate along the direction from the domain's lowest corner (length unit).
     ``keep_in`` is ``"held"`` (the design must hold keep-in regions up; default) or
     ``"supported"`` (keep-in regions print whatever lies below; supports go under them).
+    ``smooth_max_power`` is the exponent P of the printability filter's smooth maximum.
     """
 
     direction: str | tuple[float, ...] = "none"
     overhang_angle: float = 45.0
     plate_offset: float = 0.0
     keep_in: str = "held"
+    smooth_max_power: float = 80.0
 
     @property
     def active(self) -> bool:
@@ -524,7 +526,7 @@ def problem_table(problem: Problem) -> dict:
     _put(opt, "move_limit", settings.move_limit, _default_move_limit(problem.build, opt))
     bt = data.get("build", {})
     for key, default in (("direction", "none"), ("overhang_angle", 45.0), ("plate_offset", 0.0),
-                         ("keep_in", "held")):
+                         ("keep_in", "held"), ("smooth_max_power", 80.0)):
         _put(bt, key, getattr(problem.build, key), default)
     if bt:
         data["build"] = bt
@@ -818,8 +820,8 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
             raise r.fail(f"loads[{i}].where", "acts only on restrained nodes in the direction of "
                          "the force; the load would do no work")
 
-    bt = r.table(data, "build", {"direction", "overhang_angle", "plate_offset", "keep_in"},
-                 required=False)
+    bt = r.table(data, "build", {"direction", "overhang_angle", "plate_offset", "keep_in",
+                                 "smooth_max_power"}, required=False)
     build = BuildSettings(
         direction=_build_direction(r, bt, dim),
         overhang_angle=r.number(bt, "overhang_angle", "build.overhang_angle", default=45.0,
@@ -827,6 +829,9 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         plate_offset=r.number(bt, "plate_offset", "build.plate_offset", default=0.0, low=0.0),
         keep_in=r.string(bt, "keep_in", "build.keep_in", default="held",
                          choices=("held", "supported")),
+        # P must exceed log2 of the support-region size (the Q correction); 20 always does
+        smooth_max_power=r.number(bt, "smooth_max_power", "build.smooth_max_power",
+                                  default=80.0, low=20.0, high=400.0),
     )
     _check_overhang_angle(r, build.overhang_angle)
 

@@ -79,5 +79,15 @@ def beta_schedule(problem) -> BetaContinuation | None:
         return None
     return BetaContinuation(
         beta_start=settings.beta_start, beta_max=settings.beta_max, every=settings.every,
-        stagnation=settings.stall_change,
+        stagnation=settings.stall_change, extra_steps=GREY_EXTRA_STEPS,
     )
+
+
+#: A design that converges at beta_max with a grey level above GREY_TARGET is not called
+#: finished: beta is doubled again, at most GREY_EXTRA_STEPS times. Raising beta until the
+#: design is discrete is common practice (Guest, Prevost & Belytschko 2004; the grey-level
+#: measure is Sigmund's, SMO 33:401-424, 2007); the 2 % target is the issue's acceptance
+#: level. Measured: thin struts at the critical angle stayed half grey at beta 32 and
+#: left the regions they feed half printed.
+GREY_TARGET = 0.02
+GREY_EXTRA_STEPS = 2

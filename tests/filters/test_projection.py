@@ -143,11 +143,31 @@ def test_continuation_on_stagnation():
     assert d.beta == 2.0 and d.since_increase == c.since_increase
 
 
+def test_continuation_extends_past_beta_max_only_on_request_and_only_extra_steps_times():
+    c = BetaContinuation(beta_start=1.0, beta_max=4.0, every=1, extra_steps=2)
+    assert not c.extend()  # not at beta_max yet
+    while not c.at_max:
+        c.step(change=1.0)
+    c.step(change=1.0)
+    assert c.beta == 4.0  # step() never passes beta_max
+    assert c.extend() and c.beta == 8.0 and c.since_increase == 0
+    assert c.extend() and c.beta == 16.0
+    assert not c.extend() and c.beta == 16.0 == c.beta_limit
+    d = BetaContinuation(beta_start=1.0, beta_max=4.0, every=1, extra_steps=2)
+    d.restore(c.state())
+    assert d.beta == 16.0  # a checkpoint past beta_max resumes there
+    plain = BetaContinuation(beta_start=1.0, beta_max=4.0, every=1)
+    plain.restore(c.state())
+    assert plain.beta == 4.0 and not plain.extend()
+
+
 def test_continuation_bad_input():
     with pytest.raises(ValueError, match="beta_max"):
         BetaContinuation(beta_start=4.0, beta_max=2.0, every=5)
     with pytest.raises(ValueError, match="every"):
         BetaContinuation(beta_start=1.0, beta_max=2.0, every=0)
+    with pytest.raises(ValueError, match="extra_steps"):
+        BetaContinuation(beta_start=1.0, beta_max=2.0, every=1, extra_steps=-1)
 
 
 def test_length_scale_radius_one_dimensional_closed_form():

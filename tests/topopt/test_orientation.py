@@ -22,7 +22,7 @@ CANTILEVER_2D = {
     "material": {"youngs_modulus": 1.0, "poisson_ratio": 0.3},
     "restraints": [{"where": {"x": [0.0, 0.0]}, "fix": ["x", "y"]}],
     "loads": [{"where": {"x": [36.0, 36.0], "y": [10.0, 14.0]}, "force": [0.0, -1.0]}],
-    "optimize": {"volume_fraction": 0.4, "filter_radius": 1.5, "max_iterations": 250},
+    "optimize": {"volume_fraction": 0.4, "filter_radius": 1.5, "max_iterations": 400},
 }
 
 
@@ -361,8 +361,8 @@ def test_keep_in_eye_is_held_against_the_plain_reference():
 def test_supported_keep_in_with_the_earlier_settings_gives_the_earlier_design():
     # issue check "the switch for today's behaviour gives today's result": keep_in =
     # "supported" with the settings that were the defaults before keep-in regions were held
-    # (OC, move limit 0.1, no projection) reproduces the design of the version before that
-    # change. Regression reference: commit 5cdd1fa, run 2026-12-03 on this problem (our own
+    # (OC, move limit 0.1, no projection, smooth-maximum exponent 40) reproduces the design
+    # of the version before that change. Regression reference: commit 5cdd1fa, run 2026-12-03 on this problem (our own
     # earlier code, not an outside source): compliance 220.84658023222303 after 40
     # iterations, sum of densities 399.37977034983464.
     problem = problem_from_dict({
@@ -375,7 +375,8 @@ def test_supported_keep_in_with_the_earlier_settings_gives_the_earlier_design():
         "optimize": {"method": "oc", "volume_fraction": 0.35, "filter_radius": 1.5,
                      "max_iterations": 40, "change_tolerance": 0.001, "move_limit": 0.1,
                      "projection": False},
-        "build": {"direction": "+y", "overhang_angle": 45.0, "keep_in": "supported"},
+        "build": {"direction": "+y", "overhang_angle": 45.0, "keep_in": "supported",
+                  "smooth_max_power": 40.0},
     })
     result = optimize(problem)
     assert result.iterations == 40
@@ -394,3 +395,19 @@ def test_projection_false_switches_off_the_default_projection(tmp_path):
     assert problem_from_dict(problem_table(off)).optimize.projection is None
     with pytest.raises(ValueError, match="optimize.projection"):
         problem_from_dict({**base, "optimize": {"volume_fraction": 0.4, "projection": True}})
+
+
+def test_smooth_max_power_reaches_the_filter_and_round_trips():
+    from topopt.driver import build_filter_chain
+    from topopt.problem import problem_table
+
+    base = {**CANTILEVER_2D, "build": {"direction": "+y"}}
+    default = problem_from_dict(base)
+    assert default.build.smooth_max_power == 80.0
+    assert build_filter_chain(default).links[-1].p == 80.0
+    p40 = problem_from_dict({**base, "build": {"direction": "+y", "smooth_max_power": 40}})
+    assert build_filter_chain(p40).links[-1].p == 40.0
+    assert problem_from_dict(problem_table(p40)).build.smooth_max_power == 40.0
+    for bad in (19.0, 401.0, "80", float("nan")):
+        with pytest.raises(ValueError, match="build.smooth_max_power"):
+            problem_from_dict({**base, "build": {"direction": "+y", "smooth_max_power": bad}})

@@ -172,8 +172,29 @@ def test_not_converged_before_the_final_beta():
     )
     result = optimize(problem_from_dict(data, source="t.toml"))
     assert result.converged
-    assert result.history[-1]["beta"] == 4.0
-    assert result.iterations == 11  # 5 at beta 1, 5 at beta 2, first at beta 4 converges
+    betas = [row["beta"] for row in result.history]
+    assert betas[:10] == [1.0] * 5 + [2.0] * 5
+    # a still design at beta_max that is more than 2 % grey is not finished: beta doubles
+    # again (at most twice), one iteration per still-but-grey step here
+    assert betas[10] == 4.0
+    for k in range(10, len(betas) - 1):
+        assert result.history[k]["grey_level"] > 0.02
+        assert betas[k + 1] == 2 * betas[k]
+    assert result.history[-1]["grey_level"] <= 0.02 or betas[-1] == 16.0
+    assert betas[-1] <= 16.0
+
+
+def test_a_crisp_still_design_ends_at_beta_max():
+    # the extension past beta_max only acts on grey designs: a design already below 2 %
+    # grey at beta_max converges there
+    data = _coarse_mbb(
+        method="mma", projection=dict(beta_start=1.0, beta_max=16.0, every=15)
+    )
+    data["optimize"]["max_iterations"] = 200
+    result = optimize(problem_from_dict(data, source="t.toml"))
+    assert result.converged
+    last = result.history[-1]
+    assert last["grey_level"] <= 0.02 and last["beta"] == 16.0
 
 
 def test_stall_change_doubles_beta_before_every():
