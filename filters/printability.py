@@ -479,25 +479,28 @@ def _power_lanes(r, nb, p, p_int, out):  # noqa: D103 - kernel
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _smax_band(buf, vrow, width, nl, p, p_int, most, r, pw, acc):  # noqa: D103 - kernel
+def _smax_band(buf, vrow, width, nl, p, p_int, most, r, pw, acc, kept_r):  # noqa: D103
     # the largest strut value (most) and the scaled P-sum (acc) of each of the nl lanes;
-    # the ratios of all struts are raised to the power together (r and pw hold a row of
-    # nl lanes per strut), then summed strut by strut as in the formula; strut s's values
-    # are row vrow[s] of buf
+    # the ratios v / most of all struts are raised to the power together (r and pw hold a
+    # row of nl lanes per strut; kept_r, when not empty, keeps a copy of the ratios), then
+    # summed strut by strut as in the formula; strut s's values are row vrow[s] of buf
     n_s = vrow.size
     for i in range(nl):
         most[i] = 0.0
         acc[i] = 0.0
     for s in range(n_s):
-        at = vrow[s] * width
+        v = buf[vrow[s] * width:vrow[s] * width + nl]
         for i in range(nl):
-            most[i] = max(most[i], buf[at + i])
+            # max(most, v) written out: the builtin max keeps this loop out of SIMD lanes
+            most[i] = v[i] if v[i] > most[i] else most[i]
     for s in range(n_s):
         at = vrow[s] * width
         for i in range(nl):
             v = buf[at + i]
             # a strut of value <= 0 adds nothing (0.0 here, skipped in the formula)
             r[s * nl + i] = v / most[i] if v > 0.0 else 0.0
+    if kept_r.size:
+        kept_r[:n_s * nl] = r[:n_s * nl]
     _power_lanes(r, n_s * nl, p, p_int, pw)
     for s in range(n_s):
         for i in range(nl):
@@ -523,8 +526,8 @@ def _forward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, p
     # docstring, in the same order.
     # Stores per element the smooth maximum (big), its largest input (top) and the
     # scaled P-sum (psum), so that the backward sweep needs no second maximum, and, when
-    # kept is not empty, band k's smin ratios t / r and strut values (in the layout of
-    # _fold_band's ratios, the values after them) from kept_at[k] on, so that the
+    # kept is not empty, band k's smin ratios t / r and strut ratios v / most (in the
+    # layout of _fold_band's ratios, then of _smax_band's) from kept_at[k] on, so that the
     # backward need not fold again.
     sq = math.sqrt(eps)
     n_s = column.size
@@ -557,11 +560,7 @@ def _forward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, p
         pos[nb:nl] = pos[0]
         block = kept[kept_at[k]:kept_at[k + 1]]
         _fold_band(val, pos, nl, places, table, count, slot, eps, sq, width, buf, block)
-        _smax_band(buf, vrow, width, nl, p, p_int, most, r, pw, acc)
-        if block.size:
-            for s in range(n_s):
-                at = vrow[s] * width
-                block[(n_r + s) * nl:(n_r + s + 1) * nl] = buf[at:at + nl]
+        _smax_band(buf, vrow, width, nl, p, p_int, most, r, pw, acc, block[n_r * nl:])
         for i in range(nb):
             e = elem[i]
             m = most[i]
@@ -587,9 +586,9 @@ def _backward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, 
     # lamp is the adjoint on the padded grid; it enters holding the seed at every element
     # not under the plate (under it, an element is read as the constant 1.0, so nothing
     # flows back into it) and is completed in falling height, band by band. A band's
-    # smin ratios t / r (d smin / d(inputs) = 0.5 * (1 -+ t / r)) and strut values come
-    # from the forward's lanes when it kept them (kept not empty), else the band's struts
-    # are folded again in the same lanes; then the band's elements send their adjoints
+    # smin ratios t / r (d smin / d(inputs) = 0.5 * (1 -+ t / r)) and strut ratios
+    # v / most come from the forward's lanes when it kept them (kept not empty), else the
+    # band's struts are folded again in the same lanes; then the band's elements send their adjoints
     # down strut by strut into one lane row per distinct member place (lw), and each row
     # goes to lamp once. The sums into lamp come in another order than in an
     # element-by-element sweep: the same terms, rounded differently in the last bits.
@@ -604,6 +603,7 @@ def _backward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, 
     most = np.zeros(width)
     r = np.zeros(max(n_s, 1) * width)
     grads = np.zeros(max(n_s, 1) * width)
+    coef_s = np.zeros(max(n_s, 1) * width)
     n_r = int(count[1:].sum())
     for k in range(bands.size - 2, -1, -1):
         # the forward's lanes, in its order; lanes with nothing to pass back get coef 0
@@ -640,26 +640,30 @@ def _backward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, 
         coef[nb:nl] = 0.0  # the extra lanes pass nothing back
         if kept.size:
             ratio_band = kept[kept_at[k]:kept_at[k + 1]]
-            values = ratio_band
+            r[:n_s * nl] = ratio_band[n_r * nl:(n_r + n_s) * nl]
         else:
             ratio_band = ratios
-            values = buf
             _fold_band(val, pos, nl, places, table, count, slot, eps, sq, width, buf, ratios)
+            for s in range(n_s):
+                at = vrow[s] * width
+                for i in range(nl):
+                    v = buf[at + i]
+                    r[s * nl + i] = v / most[i] if v > 0.0 else 0.0
+        # a strut of value <= 0 passes nothing back (skipped in the formula); its ratio
+        # is 0.0 (the power spends r, so the test is made first)
         for s in range(n_s):
-            at = (n_r + s) * nl if kept.size else vrow[s] * width
-            vs = values[at:at + nl]
+            rs = r[s * nl:(s + 1) * nl]
+            cs = coef_s[s * nl:(s + 1) * nl]
             for i in range(nl):
-                v = vs[i]
-                r[s * nl + i] = v / most[i] if v > 0.0 else 0.0
+                cs[i] = coef[i] if rs[i] > 0.0 else 0.0
         _power_lanes(r, n_s * nl, p - 1.0, p_int - 1, grads)
         lw[: places.size * nl] = 0.0
         for s in range(n_s):
-            at = (n_r + s) * nl if kept.size else vrow[s] * width
-            vs = values[at:at + nl]
             gv = grads[s * nl:(s + 1) * nl]
+            cs = coef_s[s * nl:(s + 1) * nl]
             for i in range(nl):
-                # a strut of value <= 0 passes nothing back (skipped in the formula)
-                gv[i] = coef[i] * gv[i] if vs[i] > 0.0 else 0.0
+                # (a select, not a product: 0 ** (P - 1) is infinite for P < 1)
+                gv[i] = cs[i] * gv[i] if cs[i] != 0.0 else 0.0
             # down the strut, top member first: d smin / d w goes to the member, d smin /
             # d a on down the fold
             c = column[s]
