@@ -51,10 +51,13 @@ differences in the tests).
 The smooth sweeps are arranged for speed without changing the formula: the grid is
 padded by the stencil's reach so that every strut member is a fixed flat offset, and the
 height order is cut into bands narrower than the shallowest strut member, whose
-elements never read each other and are computed together in SIMD lanes. The forward
-does the same floating-point operations as an element-by-element sweep; the backward
-adds the same terms in another order (``tests/filters/test_printability_reference.py``
-keeps the straightforward sweeps and compares).
+elements never read each other and are computed together in SIMD lanes (a member place
+shared by several struts is read once per band). The forward keeps the derivative
+ratios of its smooth minima and maxima for the backward when they fit in 32 MB (else
+the backward folds the struts again, with the same operations). The forward does the
+same floating-point operations as an element-by-element sweep; the backward adds the
+same terms in another order (``tests/filters/test_printability_reference.py`` keeps
+the straightforward sweeps and compares).
 
 Keep-in elements (``keep``) are handled in one of two ways. ``keep_mode="print"``: they
 print as their input whatever lies below them (supports will be added under them) and
