@@ -445,16 +445,28 @@ def _fold_band(val, pos, nl, places, table, count, slot, eps, sq, width, buf,
     for u in range(1, count.size):
         for c in range(count[u]):
             fold = buf[(n_p + c) * width:(n_p + c) * width + nl]
-            if u == 1:
-                fold[:] = buf[table[0, c] * width:table[0, c] * width + nl]
+            # the first smin reads the foot's row, the later ones the fold (separate
+            # loops: a read and a write of one array stay in SIMD lanes only in place)
+            a = buf[table[0, c] * width:table[0, c] * width + nl] if u == 1 else fold[:0]
             w = buf[table[u, c] * width:table[u, c] * width + nl]
             if ratios.size:
                 ratio = ratios[(slot[u] + c) * nl:(slot[u] + c + 1) * nl]
+                if u == 1:
+                    for i in range(nl):
+                        ti = a[i] - w[i]
+                        ri = math.sqrt(ti * ti + eps)
+                        fold[i] = 0.5 * (a[i] + w[i] - ri + sq)
+                        ratio[i] = ti / ri
+                else:
+                    for i in range(nl):
+                        ti = fold[i] - w[i]
+                        ri = math.sqrt(ti * ti + eps)
+                        fold[i] = 0.5 * (fold[i] + w[i] - ri + sq)
+                        ratio[i] = ti / ri
+            elif u == 1:
                 for i in range(nl):
-                    ti = fold[i] - w[i]
-                    ri = math.sqrt(ti * ti + eps)
-                    fold[i] = 0.5 * (fold[i] + w[i] - ri + sq)
-                    ratio[i] = ti / ri
+                    ti = a[i] - w[i]
+                    fold[i] = 0.5 * (a[i] + w[i] - math.sqrt(ti * ti + eps) + sq)
             else:
                 for i in range(nl):
                     ti = fold[i] - w[i]
