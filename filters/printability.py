@@ -54,10 +54,13 @@ differences in the tests).
 The smooth sweeps are arranged for speed without changing the formula: the grid is
 padded by the stencil's reach so that every strut member is a fixed flat offset, and the
 height order is cut into bands narrower than the shallowest strut member, whose
-elements never read each other and are computed together in SIMD lanes. The forward
-does the same floating-point operations as an element-by-element sweep; the backward
-adds the same terms in another order (``tests/filters/test_printability_reference.py``
-keeps the straightforward sweeps and compares).
+elements never read each other and are computed together in SIMD lanes (a member place
+shared by several struts is read once per band). The forward keeps the derivative
+ratios of its smooth minima and maxima for the backward when they fit in 32 MB (else
+the backward folds the struts again, with the same operations). The forward does the
+same floating-point operations as an element-by-element sweep; the backward adds the
+same terms in another order (``tests/filters/test_printability_reference.py`` keeps
+the straightforward sweeps and compares).
 
 Keep-in elements (``keep``) are handled in one of two ways. ``keep_mode="print"``: they
 print as their input whatever lies below them (supports will be added under them) and
@@ -103,6 +106,7 @@ _MAX_DEPTH = 12
 _MIN_EXCESS = 1.0  # degrees: the shallowest accepted overhang is at most this much steeper
 _MAX_EXCESS = 10.0  # degrees: ... and the steepest demanded at most this much
 _AZIMUTHS = 720
+_KEPT_LIMIT = 1 << 22  # numbers the forward keeps for the backward, at most (32 MB)
 
 
 # ----------------------------------------------------------------------------------
@@ -426,37 +430,50 @@ def _logical_sweep(solid, order, on_plate, inner, mflat, shape, d, plate, member
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, ratios):  # noqa: D103
-    # every strut's smooth-min fold (foot first, as in the docstring) for the nb elements
-    # of a band: folds[c * width + i] ends as the value of the strut in column c. With
-    # ratios, also keeps t / r of each smin(a, w) (its derivatives are 0.5 * (1 -+ t / r)).
-    # Each loop writes one array and the gather has a loop of its own, so that the square
-    # roots and divisions run in SIMD lanes (the same operations element by element).
-    rows = count.size
-    n_c = table.shape[1]
-    for c in range(count[0] if rows else 0):
-        off = table[0, c]
-        for i in range(nb):
-            folds[c * width + i] = val[pos[i] + off]
-    for u in range(1, rows):
+def _fold_band(val, pos, nl, places, table, count, slot, eps, sq, width, buf,
+               ratios):  # noqa: D103 - kernel
+    # every strut's smooth-min fold (foot first, as in the docstring) for the nl lanes of
+    # a band, in the rows of buf (width lanes each): row m holds the distinct member place
+    # m (struts share members, so each place is gathered once), row n_p + c the fold of
+    # the strut in column c when it has two members or more (see _Smooth.vrow). With
+    # ratios, also keeps t / r of each smin(a, w) (its derivatives are 0.5 * (1 -+ t / r)):
+    # that of member u of column c at (slot[u] + c) * nl. Every loop but the gather runs
+    # over contiguous lanes, so that the square roots and divisions run in SIMD lanes (the
+    # same operations element by element).
+    n_p = places.size
+    for m in range(n_p):
+        off = places[m]
+        for i in range(nl):
+            buf[m * width + i] = val[pos[i] + off]
+    for u in range(1, count.size):
         for c in range(count[u]):
-            off = table[u, c]
-            fold = folds[c * width:c * width + nb]
-            for i in range(nb):
-                w[i] = val[pos[i] + off]
+            fold = buf[(n_p + c) * width:(n_p + c) * width + nl]
+            # the first smin reads the foot's row, the later ones the fold (separate
+            # loops: a read and a write of one array stay in SIMD lanes only in place)
+            a = buf[table[0, c] * width:table[0, c] * width + nl] if u == 1 else fold[:0]
+            w = buf[table[u, c] * width:table[u, c] * width + nl]
             if ratios.size:
-                ratio = ratios[(u * n_c + c) * width:(u * n_c + c) * width + nb]
-                for i in range(nb):
-                    a = fold[i]
-                    ti = a - w[i]
-                    ri = math.sqrt(ti * ti + eps)
-                    fold[i] = 0.5 * (a + w[i] - ri + sq)
-                    ratio[i] = ti / ri
+                ratio = ratios[(slot[u] + c) * nl:(slot[u] + c + 1) * nl]
+                if u == 1:
+                    for i in range(nl):
+                        ti = a[i] - w[i]
+                        ri = math.sqrt(ti * ti + eps)
+                        fold[i] = 0.5 * (a[i] + w[i] - ri + sq)
+                        ratio[i] = ti / ri
+                else:
+                    for i in range(nl):
+                        ti = fold[i] - w[i]
+                        ri = math.sqrt(ti * ti + eps)
+                        fold[i] = 0.5 * (fold[i] + w[i] - ri + sq)
+                        ratio[i] = ti / ri
+            elif u == 1:
+                for i in range(nl):
+                    ti = a[i] - w[i]
+                    fold[i] = 0.5 * (a[i] + w[i] - math.sqrt(ti * ti + eps) + sq)
             else:
-                for i in range(nb):
-                    a = fold[i]
-                    ti = a - w[i]
-                    fold[i] = 0.5 * (a + w[i] - math.sqrt(ti * ti + eps) + sq)
+                for i in range(nl):
+                    ti = fold[i] - w[i]
+                    fold[i] = 0.5 * (fold[i] + w[i] - math.sqrt(ti * ti + eps) + sq)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -480,8 +497,45 @@ def _power_lanes(r, nb, p, p_int, out):  # noqa: D103 - kernel
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _forward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, table, count,
-                    column, lengths, eps, p, p_int, q, val, xi, big, top, psum):  # noqa: D103
+def _smax_band(buf, vrow, width, nl, p, p_int, most, r, pw, acc, kept_r):  # noqa: D103
+    # the largest strut value (most) and the scaled P-sum (acc) of each of the nl lanes;
+    # the ratios v / most of all struts are raised to the power together (r and pw hold a
+    # row of nl lanes per strut; kept_r, when not empty, keeps a copy of the ratios), then
+    # summed strut by strut as in the formula; strut s's values are row vrow[s] of buf
+    n_s = vrow.size
+    for i in range(nl):
+        most[i] = 0.0
+        acc[i] = 0.0
+    for s in range(n_s):
+        v = buf[vrow[s] * width:vrow[s] * width + nl]
+        for i in range(nl):
+            # max(most, v) written out: the builtin max keeps this loop out of SIMD lanes
+            most[i] = v[i] if v[i] > most[i] else most[i]
+    for s in range(n_s):
+        at = vrow[s] * width
+        for i in range(nl):
+            v = buf[at + i]
+            # a strut of value <= 0 adds nothing (0.0 here, skipped in the formula)
+            r[s * nl + i] = v / most[i] if v > 0.0 else 0.0
+    if kept_r.size:
+        kept_r[:n_s * nl] = r[:n_s * nl]
+    _power_lanes(r, n_s * nl, p, p_int, pw)
+    for s in range(n_s):
+        for i in range(nl):
+            acc[i] += pw[s * nl + i]
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _lanes(nb):  # noqa: D103 - kernel
+    # lanes computed for nb elements: a multiple of 4 (the SIMD width for doubles), so
+    # that no loop ends in a scalar remainder; the extra lanes repeat the first element
+    return (nb + 3) & ~3
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _forward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, places, table,
+                    count, slot, column, lengths, vrow, kept_at, eps, p, p_int, q, val, kept,
+                    xi, big, top, psum):  # noqa: D103 - kernel
     # val is the padded grid (see _Smooth): constant 1.0 on or under the plate, 0.0
     # outside the domain, and each element's printed density once it is known. Bands
     # are runs of the height order in which no element reads another: their elements
@@ -489,17 +543,20 @@ def _forward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, t
     # lanes. Every element still does exactly the operations of the formula in the
     # docstring, in the same order.
     # Stores per element the smooth maximum (big), its largest input (top) and the
-    # scaled P-sum (psum), so that the backward sweep needs no second maximum.
+    # scaled P-sum (psum), so that the backward sweep needs no second maximum, and, when
+    # kept is not empty, band k's smin ratios t / r and strut ratios v / most (in the
+    # layout of _fold_band's ratios, then of _smax_band's) from kept_at[k] on, so that the
+    # backward need not fold again.
     sq = math.sqrt(eps)
     n_s = column.size
-    folds = np.zeros(max(n_s, 1) * width)
-    w = np.zeros(width)
+    buf = np.zeros((places.size + n_s) * width)
     pos = np.zeros(width, dtype=np.int64)
     elem = np.zeros(width, dtype=np.int64)
     most = np.zeros(width)
     acc = np.zeros(width)
-    r = np.zeros(width)
-    pw = np.zeros(width)
+    r = np.zeros(max(n_s, 1) * width)
+    pw = np.zeros(max(n_s, 1) * width)
+    n_r = int(count[1:].sum())
     for k in range(bands.size - 1):
         nb = 0
         for n in range(bands[k], bands[k + 1]):
@@ -517,23 +574,11 @@ def _forward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, t
             nb += 1
         if nb == 0:
             continue
-        _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, folds[:0])
-        for i in range(nb):
-            most[i] = 0.0
-            acc[i] = 0.0
-        for s in range(n_s):
-            at = column[s] * width
-            for i in range(nb):
-                most[i] = max(most[i], folds[at + i])
-        for s in range(n_s):
-            at = column[s] * width
-            for i in range(nb):
-                v = folds[at + i]
-                # a strut of value <= 0 adds nothing (0.0 here, skipped in the formula)
-                r[i] = v / most[i] if v > 0.0 else 0.0
-            _power_lanes(r, nb, p, p_int, pw)
-            for i in range(nb):
-                acc[i] += pw[i]
+        nl = _lanes(nb)
+        pos[nb:nl] = pos[0]
+        block = kept[kept_at[k]:kept_at[k + 1]]
+        _fold_band(val, pos, nl, places, table, count, slot, eps, sq, width, buf, block)
+        _smax_band(buf, vrow, width, nl, p, p_int, most, r, pw, acc, block[n_r * nl:])
         for i in range(nb):
             e = elem[i]
             m = most[i]
@@ -553,79 +598,107 @@ def _forward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, t
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _backward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, table, count,
-                     column, lengths, eps, p, p_int, q, val, big, top, psum, seed, lamp, dx):  # noqa: D103
+def _backward_kernel(x, keep, hold, order, bands, width, on_plate, pidx, under, places, table,
+                     count, slot, column, lengths, vrow, kept_at, eps, p, p_int, q, val, kept,
+                     big, top, psum, seed, lamp, dx):  # noqa: D103 - kernel
     # lamp is the adjoint on the padded grid; it enters holding the seed at every element
     # not under the plate (under it, an element is read as the constant 1.0, so nothing
     # flows back into it) and is completed in falling height, band by band. A band's
-    # struts are folded again in SIMD lanes keeping d smin / d(inputs) as the ratio t / r,
-    # then the band's elements send their adjoints down strut by strut. The sums into
-    # lamp come in another order than in an element-by-element sweep: the same terms,
-    # rounded differently in the last bits.
+    # smin ratios t / r (d smin / d(inputs) = 0.5 * (1 -+ t / r)) and strut ratios
+    # v / most come from the forward's lanes when it kept them (kept not empty), else the
+    # band's struts are folded again in the same lanes; then the band's elements send their adjoints
+    # down strut by strut into one lane row per distinct member place (lw), and each row
+    # goes to lamp once. The sums into lamp come in another order than in an
+    # element-by-element sweep: the same terms, rounded differently in the last bits.
     sq = math.sqrt(eps)
     n_s = column.size
-    rows = count.size
     n_c = table.shape[1]
-    folds = np.zeros(max(n_s, 1) * width)
-    ratios = np.zeros(max(rows * n_c, 1) * width)
-    w = np.zeros(width)
+    buf = np.zeros((places.size + n_s) * width)
+    ratios = np.zeros(max(count.size * n_c, 1) * width)
+    lw = np.zeros(max(places.size, 1) * width)
     pos = np.zeros(width, dtype=np.int64)
-    elem = np.zeros(width, dtype=np.int64)
     coef = np.zeros(width)
     most = np.zeros(width)
-    r = np.zeros(width)
-    grads = np.zeros(width)
+    r = np.zeros(max(n_s, 1) * width)
+    grads = np.zeros(max(n_s, 1) * width)
+    coef_s = np.zeros(max(n_s, 1) * width)
+    n_r = int(count[1:].sum())
     for k in range(bands.size - 2, -1, -1):
+        # the forward's lanes, in its order; lanes with nothing to pass back get coef 0
+        # (and their largest strut value, so that no power overflows)
         nb = 0
-        for n in range(bands[k + 1] - 1, bands[k] - 1, -1):
+        for n in range(bands[k], bands[k + 1]):
             e = order[n]
             g = seed[e] if under[e] else lamp[pidx[e]]
-            if on_plate[e] or (keep[e] and not hold):
+            if on_plate[e]:
+                dx[e] = g
+                continue
+            m = top[e]
+            pos[nb] = pidx[e]
+            coef[nb] = 0.0
+            most[nb] = m if m > 0.0 else 1.0
+            nb += 1
+            if keep[e] and not hold:
                 dx[e] = g
                 continue
             t0 = x[e] - big[e]
             r0 = math.sqrt(t0 * t0 + eps)
             dx[e] = g * 0.5 * (1.0 - t0 / r0)
             gb = g * 0.5 * (1.0 + t0 / r0)
-            m = top[e]
             if gb == 0.0 or m == 0.0:
                 continue  # all supports zero: the smax gradient vanishes in the limit
-            elem[nb] = e
-            pos[nb] = pidx[e]
-            most[nb] = m
             # gb * d smax / d v_top, m**(P/Q - 1) * psum**(1/Q - 1) written as big / (m * psum)
             # from the forward (no powers here; equal up to rounding)
-            coef[nb] = gb * (p / q) * (big[e] / (m * psum[e]))
-            nb += 1
+            coef[nb - 1] = gb * (p / q) * (big[e] / (m * psum[e]))
         if nb == 0:
             continue
-        _fold_band(val, pos, nb, table, count, eps, sq, width, folds, w, ratios)
+        nl = _lanes(nb)
+        pos[nb:nl] = pos[0]
+        most[nb:nl] = most[0]
+        coef[nb:nl] = 0.0  # the extra lanes pass nothing back
+        if kept.size:
+            ratio_band = kept[kept_at[k]:kept_at[k + 1]]
+            r[:n_s * nl] = ratio_band[n_r * nl:(n_r + n_s) * nl]
+        else:
+            ratio_band = ratios
+            _fold_band(val, pos, nl, places, table, count, slot, eps, sq, width, buf, ratios)
+            for s in range(n_s):
+                at = vrow[s] * width
+                for i in range(nl):
+                    v = buf[at + i]
+                    r[s * nl + i] = v / most[i] if v > 0.0 else 0.0
+        # a strut of value <= 0 passes nothing back (skipped in the formula); its ratio
+        # is 0.0 (the power spends r, so the test is made first)
         for s in range(n_s):
-            at = column[s] * width
-            for i in range(nb):
-                v = folds[at + i]
-                r[i] = v / most[i] if v > 0.0 else 0.0
-            gv = grads[:nb]
-            _power_lanes(r, nb, p - 1.0, p_int - 1, gv)
-            for i in range(nb):
-                # a strut of value <= 0 passes nothing back (skipped in the formula)
-                gv[i] = coef[i] * gv[i] if folds[at + i] > 0.0 else 0.0
+            rs = r[s * nl:(s + 1) * nl]
+            cs = coef_s[s * nl:(s + 1) * nl]
+            for i in range(nl):
+                cs[i] = coef[i] if rs[i] > 0.0 else 0.0
+        _power_lanes(r, n_s * nl, p - 1.0, p_int - 1, grads)
+        lw[: places.size * nl] = 0.0
+        for s in range(n_s):
+            gv = grads[s * nl:(s + 1) * nl]
+            cs = coef_s[s * nl:(s + 1) * nl]
+            for i in range(nl):
+                # (a select, not a product: 0 ** (P - 1) is infinite for P < 1)
+                gv[i] = cs[i] * gv[i] if cs[i] != 0.0 else 0.0
             # down the strut, top member first: d smin / d w goes to the member, d smin /
-            # d a on down the fold; for one member the band's elements hit distinct places
+            # d a on down the fold
             c = column[s]
             for u in range(lengths[s] - 1, 0, -1):
-                off = table[u, c]
-                ratio = ratios[(u * n_c + c) * width:(u * n_c + c) * width + nb]
-                for i in range(nb):
-                    w[i] = gv[i] * 0.5 * (1.0 + ratio[i])
-                for i in range(nb):
-                    lamp[pos[i] + off] += w[i]
-                for i in range(nb):
+                ratio = ratio_band[(slot[u] + c) * nl:(slot[u] + c + 1) * nl]
+                lane = lw[table[u, c] * nl:(table[u, c] + 1) * nl]
+                for i in range(nl):
+                    lane[i] += gv[i] * 0.5 * (1.0 + ratio[i])
                     gv[i] *= 0.5 * (1.0 - ratio[i])
-            off = table[0, c]
+            lane = lw[table[0, c] * nl:(table[0, c] + 1) * nl]
+            for i in range(nl):
+                lane[i] += gv[i]
+        # for one member place the band's elements hit distinct places of lamp
+        for m in range(places.size):
+            off = places[m]
             for i in range(nb):
-                lamp[pos[i] + off] += gv[i]
-
+                lamp[pos[i] + off] += lw[m * nl + i]
 
 # ----------------------------------------------------------------------------------
 # the grid set-up shared by the smooth filter and the logical helpers
@@ -684,12 +757,17 @@ class _Smooth:
     pidx: np.ndarray  # padded flat index of every element
     under: np.ndarray  # flat, bool: the element's centre lies on or under the plate
     base: np.ndarray  # padded grid: 1.0 on or under the plate, 0.0 elsewhere
-    table: np.ndarray  # (rows, struts): padded offset of member u of the strut in column c
+    places: np.ndarray  # padded offsets of the distinct strut members
+    table: np.ndarray  # (rows, struts): member u of the strut in column c, as a row of places
     count: np.ndarray  # (rows,): struts at least u + 1 members long (columns by falling length)
     column: np.ndarray  # (struts,): column of strut s in the table
+    vrow: np.ndarray  # (struts,): lane row of strut s's value in the kernels (see _fold_band)
+    slot: np.ndarray  # (rows,): number of the first smin of member u in a band's lanes
     lengths: np.ndarray  # (struts,): members of strut s
     bands: np.ndarray  # starts of runs of the height order in which no element reads another
-    width: int  # elements in the longest band (the kernels' lane buffers)
+    kept_at: np.ndarray  # (bands + 1,): start of band k's numbers kept by the forward
+    keep: bool  # the forward keeps smin ratios and strut values for the backward
+    width: int  # lanes of the longest band (see _lanes): the kernels' lane buffers
 
 
 @numba.njit(cache=True)
@@ -728,18 +806,29 @@ def _smooth_setup(sw: _Sweep) -> _Smooth:
     rows = int(lengths.max()) if lengths.size else 0
     table = np.zeros((rows, lengths.size), dtype=np.int64)
     flat = m @ strides if m.size else np.zeros(0, dtype=np.int64)
+    # struts share members: each distinct place is read once per band
+    places, member = np.unique(flat, return_inverse=True)
     for s in range(lengths.size):
         start = stencil.starts[s]
-        table[: lengths[s], column[s]] = flat[start : start + lengths[s]]
+        table[: lengths[s], column[s]] = member[start : start + lengths[s]]
     count = np.array([np.count_nonzero(lengths > u) for u in range(rows)], dtype=np.int64)
+    slot = np.concatenate([[0, 0], np.cumsum(count[1:])])[:rows].astype(np.int64)
     # every member lies at least `shallowest` lower than its element, so elements less
     # than that apart in height never read each other (the margin covers rounding)
     shallowest = float((-(m @ d)).min()) if m.size else math.inf
     bands = _band_starts(sw.heights[sw.order], shallowest - 1e-9)
+    # the smin ratios and strut values of a band's lanes (its elements off the plate),
+    # kept by the forward for the backward when they fit (see _KEPT_LIMIT)
+    lifted = np.add.reduceat(~sw.on_plate[sw.order], bands[:-1])
+    lanes = np.array([_lanes(n) for n in lifted], dtype=np.int64)
+    kept = lanes * int(count[1:].sum() + lengths.size)
+    kept_at = np.concatenate([[0], np.cumsum(kept)]).astype(np.int64)
     return _Smooth(pidx=pidx, under=np.ascontiguousarray(below[pidx]),
-                   base=np.where(below, 1.0, 0.0), table=table, count=count, column=column,
-                   lengths=lengths, bands=bands,
-                   width=max(1, int(np.diff(bands).max(initial=1))))
+                   base=np.where(below, 1.0, 0.0), places=places.astype(np.int64),
+                   table=table, count=count, column=column, lengths=lengths,
+                   vrow=np.where(lengths > 1, places.size + column, table[0, column]),
+                   slot=slot, bands=bands, kept_at=kept_at, keep=bool(kept_at[-1] <= _KEPT_LIMIT),
+                   width=_lanes(max(1, int(np.diff(bands).max(initial=1)))))
 
 
 class PrintabilityFilter:
@@ -792,6 +881,7 @@ class PrintabilityFilter:
         # integer exponents up to 256 take the fast path of _power
         self._p_int = int(self.p) if self.p == int(self.p) and 1 <= self.p <= 256 else -1
         self._last = None
+        self._kept = None
 
     def __repr__(self) -> str:
         return (
@@ -810,8 +900,8 @@ class PrintabilityFilter:
     def _args(self):
         sw, sm = self._sweep, self._smooth
         return (self._keep, self.keep_mode == "hold", sw.order, sm.bands, sm.width, sw.on_plate,
-                sm.pidx, sm.under, sm.table, sm.count, sm.column, sm.lengths, self.epsilon,
-                self.p, self._p_int, self.q)
+                sm.pidx, sm.under, sm.places, sm.table, sm.count, sm.slot, sm.column,
+                sm.lengths, sm.vrow, sm.kept_at, self.epsilon, self.p, self._p_int, self.q)
 
     def forward(self, x: np.ndarray) -> np.ndarray:
         """Return the printed density of the blueprint density ``x`` (grid shape)."""
@@ -820,20 +910,26 @@ class PrintabilityFilter:
             raise ValueError(f"x must be non-negative, got a minimum of {xf.min():.3g}")
         xi, big, top, psum = (np.zeros_like(xf) for _ in range(4))
         val = self._smooth.base.copy()
-        _forward_kernel(xf, *self._args(), val, xi, big, top, psum)
-        self._last = (xf, xi, big, top, psum, val)
+        kept = np.empty(0)
+        if self._smooth.keep:
+            # one buffer for the filter's life: fresh pages would cost more than the sweep
+            if self._kept is None:
+                self._kept = np.empty(int(self._smooth.kept_at[-1]))
+            kept = self._kept
+        _forward_kernel(xf, *self._args(), val, kept, xi, big, top, psum)
+        self._last = (xf, xi, big, top, psum, val, kept)
         out = xi if self.keep_mode == "print" else np.where(self._keep, xf, xi)
         return out.reshape(self.shape)
 
     def _reverse(self, seed: np.ndarray) -> np.ndarray:
         if self._last is None:
             raise ValueError("backward needs a forward call first")
-        xf, xi, big, top, psum, val = self._last
+        xf, xi, big, top, psum, val, kept = self._last
         sm = self._smooth
         lamp = np.zeros_like(val)
         lamp[sm.pidx] = np.where(sm.under, 0.0, seed)
         dx = np.zeros_like(xf)
-        _backward_kernel(xf, *self._args(), val, big, top, psum, seed, lamp, dx)
+        _backward_kernel(xf, *self._args(), val, kept, big, top, psum, seed, lamp, dx)
         return dx
 
     def backward(self, dy: np.ndarray) -> np.ndarray:

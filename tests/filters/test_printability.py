@@ -520,3 +520,38 @@ def test_filter_meets_the_protocol():
     assert isinstance(f, Filter)
     x = np.random.default_rng(2).random((5, 4))
     np.testing.assert_array_equal(FilterChain([f]).forward(x), f.forward(x))
+
+
+@pytest.mark.parametrize("mode", ["print", "hold"])
+@pytest.mark.parametrize(("shape", "direction", "angle"), [((30, 20), [1.0, 2.0], 35.0),
+                                                           ((10, 8, 7), [0.3, 0.5, 0.8], 55.0),
+                                                           ((12, 9), "+y", 45.0)])
+def test_backward_is_the_same_with_or_without_the_kept_ratios(monkeypatch, shape, direction,
+                                                              angle, mode):
+    # The forward keeps the smin ratios and strut values for the backward when they fit
+    # in printability._KEPT_LIMIT, else the backward folds the struts again: both must
+    # give the same numbers (the same operations). Internal consistency, common practice.
+    from filters import printability
+
+    rng = np.random.default_rng(12)
+    keep = rng.random(shape) < 0.05
+    kwargs = dict(direction=direction, overhang_angle=angle, keep=keep, keep_mode=mode)
+    kept = printability_filter(shape, **kwargs)
+    monkeypatch.setattr(printability, "_KEPT_LIMIT", 0)
+    refold = printability_filter(shape, **kwargs)
+    assert kept._smooth.keep and not refold._smooth.keep
+    x1 = rng.uniform(0.0, 1.2, shape)  # above 1 too: no power may overflow
+    x1[rng.random(shape) < 0.2] = 0.0
+    x2 = rng.uniform(0.0, 1.0, shape)
+    dy = rng.standard_normal(shape)
+    kept.forward(x1)  # the kept numbers must follow the last forward
+    np.testing.assert_array_equal(kept.forward(x2), refold.forward(x2))
+    np.testing.assert_array_equal(kept.backward(dy), refold.backward(dy))
+    kept.forward(x1)
+    refold.forward(x1)
+    np.testing.assert_array_equal(kept.backward(dy), refold.backward(dy))
+    if mode == "hold":
+        w = rng.random(int(keep.sum()))
+        np.testing.assert_array_equal(kept.keep_printed_backward(w),
+                                      refold.keep_printed_backward(w))
+    assert np.all(np.isfinite(kept.backward(dy)))
