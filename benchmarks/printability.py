@@ -30,6 +30,7 @@ from filters.printability import printability_filter  # noqa: E402
 from topopt.assembly import Assembler  # noqa: E402
 from topopt.elements import element_stiffness  # noqa: E402
 from topopt.grid import Grid  # noqa: E402
+from topopt.problem import BuildSettings  # noqa: E402
 from topopt.solvers import cholmod_available, make_solver  # noqa: E402
 
 SIZES = [(120, 60), (240, 120), (480, 240), (30, 15, 15), (40, 20, 20), (48, 24, 24)]
@@ -76,8 +77,9 @@ def measure(shape: tuple[int, ...], rng: np.random.Generator) -> dict:
     }
     dy = rng.standard_normal(shape)
     for label, d2, d3, angle in CASES:
+        # the smooth-maximum exponent the optimiser uses (build.smooth_max_power)
         f = printability_filter(shape, direction=d2 if len(shape) == 2 else d3,
-                                overhang_angle=angle)
+                                overhang_angle=angle, p=BuildSettings().smooth_max_power)
         f.forward(density)
         f.backward(dy)  # compile / warm up
 
