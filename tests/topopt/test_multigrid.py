@@ -182,11 +182,10 @@ def test_solution_solves_the_system():
 def test_bracket_3d_optimisation_same_with_multigrid_and_direct():
     # Issue check: the bundled 3D bracket optimised with either solver ends within 0.5 %
     # in compliance (reference: the same run with the direct solver).
+    import dataclasses
     from pathlib import Path
 
     from topopt import load_problem, optimize
-
-    import dataclasses
 
     path = Path(__file__).resolve().parents[2] / "examples" / "bracket-3d.toml"
     problem = load_problem(path)
