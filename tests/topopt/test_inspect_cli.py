@@ -109,6 +109,27 @@ def test_inspect_results_folder_writes_the_report(tmp_path, capsys):
     assert "first-order" in text
 
 
+def test_inspect_adds_the_problems_tilted_direction_to_the_axes(tmp_path, capsys):
+    # a design optimised for a tilted direction is analysed in that direction too; an
+    # axis direction in the problem adds nothing (it is among the axes already)
+    tilted = PROBLEM_2D + '[build]\ndirection = [1.0, 1.0]\n'
+    folder = results_folder(tmp_path, t_shape_2d(), tilted, name="tilted")
+    out = tmp_path / "report-tilted"
+    assert main(["inspect", str(folder), "--out", str(out)]) == 0
+    report, rows = read_report(out)
+    assert [r["direction"] for r in rows] == ["+x", "-x", "+y", "-y", "[0.7071, 0.7071]"]
+    assert report["directions"][-1]["vector"] == pytest.approx([2**-0.5, 2**-0.5])
+    axis = results_folder(tmp_path, t_shape_2d(), PROBLEM_2D + '[build]\ndirection = "+y"\n',
+                          name="axis")
+    assert main(["inspect", str(axis), "--out", str(tmp_path / "report-axis")]) == 0
+    _, rows = read_report(tmp_path / "report-axis")
+    assert [r["direction"] for r in rows] == ["+x", "-x", "+y", "-y"]
+    # --directions still decides alone
+    assert main(["inspect", str(folder), "--out", str(tmp_path / "r3"), "--directions",
+                 "+y"]) == 0
+    assert [r["direction"] for r in read_report(tmp_path / "r3")[1]] == ["+y"]
+
+
 def test_inspect_npy_and_npz_with_element_size_and_options(tmp_path, capsys):
     np.save(tmp_path / "d.npy", t_shape_2d())
     np.savez(tmp_path / "d.npz", density=t_shape_2d(), other=np.zeros(3))

@@ -37,7 +37,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--directions", default=None, metavar="LIST",
                         help="candidate build directions, comma-separated: axis names or "
                              "vectors of numbers separated by spaces, e.g. "
-                             "--directions '-z,+z,0 1 1' (default: all axis directions)")
+                             "--directions '-z,+z,0 1 1' (default: all axis directions, "
+                             "and the problem file's build direction when it is tilted)")
     parser.add_argument("--search", type=int, default=None, metavar="N",
                         help="search orientations: N directions spread evenly over the sphere "
                              "(the circle in 2D) plus the axis directions, analysed and ranked")
@@ -80,6 +81,7 @@ class LoadedDesign:
     source: str
     units: str | None = None
     kg_per_mass: float = 1.0  # the problem's mass unit in kg
+    build_direction: object = None  # the problem's build direction, when it sets one
 
     @property
     def mass_density_kg(self) -> float | None:
@@ -356,10 +358,14 @@ def load_design(args: argparse.Namespace) -> LoadedDesign:
         defaults = ProcessSettings.defaults_for(units) if units else ProcessSettings()
         process = {k: float(getattr(defaults, k)) for k in PROCESS_DEFAULTS}
         mass_density = None
+    build_direction = None
+    if problem is not None and problem.build.active and path.suffix.lower() != ".stl":
+        build_direction = problem.build.direction
     return LoadedDesign(density=density, element_size=element_size, thickness=thickness,
                         overhang_angle=angle, process=process, mass_density=mass_density,
                         source=str(path), units=units,
-                        kg_per_mass=1.0 if problem is None else problem.units.kg_per_mass)
+                        kg_per_mass=1.0 if problem is None else problem.units.kg_per_mass,
+                        build_direction=build_direction)
 
 
 #: Bytes the print-preparation analysis holds per voxel, a lower estimate: measured as
@@ -417,6 +423,13 @@ def run(args: argparse.Namespace) -> int:
     weights = parse_weights(args.weights)
     design = load_design(args)
     directions = parse_directions(args.directions, design.density.ndim)
+    if directions is None and args.search is None and design.build_direction is not None:
+        from filters.direction import axis_directions, direction_label
+
+        axes = list(axis_directions(design.density.ndim))
+        if direction_label(design.build_direction, design.density.ndim) not in axes:
+            # a design optimised for a tilted direction: analyse that one beside the axes
+            directions = axes + [list(design.build_direction)]
     settings = {"element_size": design.element_size, "overhang_angle": design.overhang_angle,
                 "thickness": design.thickness, "process": design.process,
                 # masses in kg, the powder price per kg
