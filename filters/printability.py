@@ -379,8 +379,8 @@ def _place(e, t, inner, mflat, members, shape, d, plate):  # noqa: D103 - kernel
 
 @numba.njit(cache=True)
 def _power(r, p, p_int):  # noqa: D103 - kernel
-    # r**p; integer exponents (the default P = 40) by repeated squaring, several times
-    # faster than the general pow, which dominates the cost of the filter
+    # r**p; integer exponents (40 of the papers, 80 of the optimiser) by repeated
+    # squaring, several times faster than the general pow, which dominates the filter
     if p_int < 0:
         return r**p
     out = 1.0
@@ -862,24 +862,15 @@ class PrintabilityFilter:
         self.enforced_angle = stencil.enforced_angle
         self.steepest_angle = stencil.steepest_angle
         self.support_size = max(stencil.size, 1)
-        self.xi0 = float(xi0)
-        self.set_sharpness(epsilon=epsilon, p=p)
-
-    def set_sharpness(self, *, epsilon: float, p: float) -> None:
-        """Set the smooth-min parameter ``epsilon`` and the smooth-max exponent ``p``.
-
-        Smaller ``epsilon`` and larger ``p`` bring the filter closer to the exact
-        min/max rule; the optimiser tightens them with the projection's continuation.
-        """
-        q = float(p) + math.log(self.support_size) / math.log(self.xi0)
-        if q <= 0.0:
-            raise ValueError(
-                f"p must exceed log(Ns)/log(1/xi0) = {float(p) - q:.3g} for a support "
-                f"region of {self.support_size} elements, got p={p!r}"
-            )
-        self.epsilon, self.p, self.q = float(epsilon), float(p), q
+        self.epsilon, self.p, self.xi0 = float(epsilon), float(p), float(xi0)
         # integer exponents up to 256 take the fast path of _power
         self._p_int = int(self.p) if self.p == int(self.p) and 1 <= self.p <= 256 else -1
+        self.q = self.p + math.log(self.support_size) / math.log(self.xi0)
+        if self.q <= 0.0:
+            raise ValueError(
+                f"p must exceed log(Ns)/log(1/xi0) = {self.p - self.q:.3g} for a support "
+                f"region of {self.support_size} elements, got p={p!r}"
+            )
         self._last = None
         self._kept = None
 
