@@ -299,7 +299,7 @@ def _galerkin_children(mats, children, q, out):  # pragma: no cover - compiled
     nd = mats.shape[1]
     dim = nd // nn
     for e in numba.prange(n_coarse):
-        t = np.empty((nd, nn, dim))  # t[r, b, j] = sum_l M[r, l dim + j] q[l, b]
+        t = np.empty((nd, nn, dim))  # t[r, b, j] = sum_m M[r, m dim + j] q[m, b]
         for c in range(n_children):
             f = children[c, e]
             if f < 0:
@@ -308,10 +308,10 @@ def _galerkin_children(mats, children, q, out):  # pragma: no cover - compiled
                 for b in range(nn):
                     for j in range(dim):
                         acc = 0.0
-                        for l in range(nn):
-                            w = q[c, l, b]
+                        for m in range(nn):
+                            w = q[c, m, b]
                             if w != 0.0:
-                                acc += mats[f, r, l * dim + j] * w
+                                acc += mats[f, r, m * dim + j] * w
                         t[r, b, j] = acc
             for a in range(nn):
                 for k in range(nn):
