@@ -304,6 +304,45 @@ def _element_product(u, scale, K0, local, dim, y):  # pragma: no cover - compile
                                 out[row, ln * dim + a]
 
 
+@numba.njit(parallel=True, cache=True)
+def _element_energies(U, element_dofs, K0, out):  # pragma: no cover - compiled
+    nd = K0.shape[0]
+    for e in numba.prange(element_dofs.shape[0]):
+        for c in range(U.shape[1]):
+            acc = 0.0
+            for i in range(nd):
+                ui = U[element_dofs[e, i], c]
+                row = 0.0
+                for j in range(nd):
+                    row += K0[i, j] * U[element_dofs[e, j], c]
+                acc += ui * row
+            out[e, c] = acc
+
+
+def element_energies(U: np.ndarray, element_dofs: np.ndarray, element_matrix: np.ndarray
+                     ) -> np.ndarray:
+    """u_e^T K0 u_e per element and load case, shape (n_elements, n_cases).
+
+    A compiled loop over the elements: the same numbers as gathering every u_e into one
+    array and contracting with K0 (``np.einsum``), without the (n_elements, nd, n_cases)
+    temporary (190 MB at 1e6 H8 elements) and on all of numba's threads.
+
+    Examples
+    --------
+    >>> K0 = np.array([[1.0, -1.0], [-1.0, 1.0]])
+    >>> element_energies(np.array([[0.0], [2.0], [3.0]]), np.array([[0, 1], [1, 2]]), K0)
+    array([[4.],
+           [1.]])
+    """
+    U = np.ascontiguousarray(U, dtype=float)
+    if U.ndim == 1:
+        U = U[:, None]
+    out = np.empty((element_dofs.shape[0], U.shape[1]))
+    _element_energies(U, np.ascontiguousarray(element_dofs),
+                      np.ascontiguousarray(element_matrix, dtype=float), out)
+    return out
+
+
 @numba.njit(cache=True)
 def _element_diagonal(scale, K0, local, dim, d):  # pragma: no cover - compiled
     e0, e1, e2 = scale.shape

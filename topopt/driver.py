@@ -385,15 +385,25 @@ def optimize(
                     bar.update(1)
                     bar.set_postfix(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
                 # with continuation, only a still design at the final beta counts as converged
-                if change < settings.change_tolerance and (schedule is None or schedule.at_max):
+                drift = compliance_drift(history, STALL_WINDOW)
+                stalled = (settings.compliance_tolerance > 0.0 and drift is not None
+                           and drift < settings.compliance_tolerance)
+                if ((change < settings.change_tolerance or stalled)
+                        and (schedule is None or schedule.at_max)):
                     if schedule is not None and row["grey_level"] > robust.GREY_TARGET \
                             and schedule.extend():
                         # still but grey: not finished; sharpen once more and go on
                         set_beta(chains, schedule.beta)
                     else:
                         converged = True
-                        message = (f"converged: largest design change {change:.4g} < "
-                                   f"{settings.change_tolerance}")
+                        if change < settings.change_tolerance:
+                            message = (f"converged: largest design change {change:.4g} < "
+                                       f"{settings.change_tolerance}")
+                        else:
+                            message = (f"converged: compliance changed by {drift:.2g} over the "
+                                       f"last {STALL_WINDOW} iterations < "
+                                       f"compliance_tolerance {settings.compliance_tolerance} "
+                                       f"(largest design change {change:.4g})")
                         break
                 if schedule is not None and schedule.step(change=change):
                     set_beta(chains, schedule.beta)
@@ -428,6 +438,33 @@ def optimize(
         grey_level=grey_level(physical),
         unholdable_keep_in=int(unholdable.sum()),
     )
+
+
+#: Iterations over which ``optimize.compliance_tolerance`` compares the compliance.
+STALL_WINDOW = 10
+
+
+def compliance_drift(history: list[dict], window: int) -> float | None:
+    """Relative compliance change over the last ``window`` iterations, |c_-w - c| / c.
+
+    None until ``window + 1`` rows exist, or when beta changed inside the window (the
+    compliance then jumps for a reason other than the design moving).
+
+    Examples
+    --------
+    >>> rows = [{"compliance": c, "beta": 16.0} for c in (110.0, 105.0, 104.0, 103.9)]
+    >>> round(compliance_drift(rows, 2), 6)
+    0.010587
+    >>> compliance_drift(rows[:2], 2) is None
+    True
+    """
+    if len(history) < window + 1:
+        return None
+    rows = history[-(window + 1):]
+    if len({row.get("beta") for row in rows}) > 1:
+        return None
+    first, last = float(rows[0]["compliance"]), float(rows[-1]["compliance"])
+    return abs(first - last) / abs(last) if last else None
 
 
 class MoveDamping:

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from topopt.assembly import Assembler
+from topopt.assembly import Assembler, element_energies
 from topopt.elements import element_stiffness
 from topopt.solvers import make_solver
 
@@ -86,8 +86,7 @@ class ComplianceModel:
 
     def element_energy(self, U: np.ndarray) -> np.ndarray:
         """u_e^T K0_e u_e per element and load case, shape (n_elements, n_cases)."""
-        ue = U[self.grid.element_dofs]  # (n_el, nd, n_cases)
-        return np.einsum("eic,ij,ejc->ec", ue, self.element_matrix, ue)
+        return element_energies(U, self.grid.element_dofs, self.element_matrix)
 
     def evaluate(self, physical: np.ndarray) -> Evaluation:
         """Compliance summed over load cases and its gradient in grid shape."""

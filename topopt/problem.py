@@ -86,6 +86,7 @@ class OptimizeSettings:
     method: str = "oc"
     max_iterations: int = 200
     change_tolerance: float = 0.01
+    compliance_tolerance: float = 0.0
     move_limit: float = 0.2
     solver: str = "auto"
     checkpoint_every: int = 10
@@ -98,6 +99,7 @@ class OptimizeSettings:
         _field_in(self, "penalty", 1.0, 10.0)
         _field_in(self, "max_iterations", 1, 100000, integer=True)
         _field_in(self, "change_tolerance", 0.0, 1.0, low_open=True)
+        _field_in(self, "compliance_tolerance", 0.0, 0.1)
         _field_in(self, "move_limit", 0.0, 1.0, low_open=True)
         _field_in(self, "checkpoint_every", 1, math.inf, integer=True)
         if self.min_member_size is not None:
@@ -502,7 +504,8 @@ def problem_table(problem: Problem) -> dict:
     method_default = "mma" if problem.build.active else "oc"  # as the reader chooses
     for key, default in (("volume_fraction", ...), ("penalty", 3.0), ("method", method_default),
                          ("max_iterations", 200), ("change_tolerance", 0.01),
-                         ("solver", "auto"), ("checkpoint_every", 10)):
+                         ("compliance_tolerance", 0.0), ("solver", "auto"),
+                         ("checkpoint_every", 10)):
         _put(opt, key, getattr(settings, key), default)
     if settings.min_member_size is None:
         opt.pop("min_member_size", None)
@@ -656,8 +659,8 @@ TOP_KEYS = {"name", "units", "domain", "material", "restraints", "loads", "passi
             "build", "process"}
 OPTIMIZE_KEYS = {
     "volume_fraction", "filter_radius", "penalty", "method", "max_iterations",
-    "change_tolerance", "move_limit", "solver", "checkpoint_every", "projection",
-    "min_member_size",
+    "change_tolerance", "compliance_tolerance", "move_limit", "solver", "checkpoint_every",
+    "projection", "min_member_size",
 }
 METHODS = ("oc", "mma")
 
@@ -898,6 +901,9 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
                                 low=1, high=100000, integer=True),
         change_tolerance=r.number(opt, "change_tolerance", "optimize.change_tolerance",
                                   default=0.01, low=0.0, high=1.0, low_open=True),
+        compliance_tolerance=r.number(opt, "compliance_tolerance",
+                                      "optimize.compliance_tolerance", default=0.0, low=0.0,
+                                      high=0.1),
         move_limit=r.number(opt, "move_limit", "optimize.move_limit",
                             default=_default_move_limit(build, opt), low=0.0, high=1.0,
                             low_open=True),

@@ -464,3 +464,59 @@ def test_resume_with_damped_move_limits_repeats_the_uninterrupted_run():
     # without the damping state the resumed run would differ (the check can fail)
     plain = {k: v for k, v in damped[0].items() if not k.startswith("damping_")}
     assert np.abs(optimize(p, resume=plain).design - full.design).max() > 1e-9
+
+
+def test_compliance_tolerance_stops_a_creeping_run_at_the_final_beta():
+    # optimize.compliance_tolerance: a design at the final beta whose compliance moved by
+    # less than the tolerance over the last 10 iterations is finished even while a few
+    # elements still creep by more than change_tolerance (common practice: stopping on
+    # the objective's relative change). The strict run here is the reference.
+    data = _coarse_mbb(method="mma", change_tolerance=0.001,
+                       projection=dict(beta_start=1.0, beta_max=16.0, every=15))
+    data["optimize"]["max_iterations"] = 300
+    strict = optimize(problem_from_dict(data, source="t.toml"))
+    data["optimize"]["compliance_tolerance"] = 1e-3
+    quick = optimize(problem_from_dict(data, source="t.toml"))
+    assert quick.converged and "compliance_tolerance" in quick.message, quick.message
+    assert quick.iterations < strict.iterations
+    last = quick.history[-11:]
+    assert {row["beta"] for row in last} == {16.0}
+    drift = abs(last[0]["compliance"] - last[-1]["compliance"]) / last[-1]["compliance"]
+    assert drift < 1e-3
+    assert quick.history[-1]["change"] >= 0.001      # the change rule alone would go on
+    assert quick.grey_level <= 0.02
+    assert abs(quick.compliance - strict.compliance) <= 0.01 * strict.compliance
+
+
+def test_compliance_drift_ignores_windows_across_a_beta_change():
+    from topopt.driver import compliance_drift
+
+    rows = [{"compliance": 100.0 - k, "beta": 8.0 if k < 3 else 16.0} for k in range(12)]
+    assert compliance_drift(rows, 10) is None          # beta doubled inside the window
+    assert compliance_drift(rows[3:], 8) == pytest.approx(8.0 / 89.0)
+    assert compliance_drift([{"compliance": 5.0}] * 11, 10) == 0.0  # no projection column
+
+
+def test_compliance_tolerance_is_read_checked_and_round_trips(tmp_path):
+    import subprocess
+    import sys
+
+    from topopt.problem import problem_table
+
+    assert problem_from_dict(_coarse_mbb(), source="t.toml").optimize.compliance_tolerance == 0.0
+    p = problem_from_dict(_coarse_mbb(compliance_tolerance=5e-4), source="t.toml")
+    assert p.optimize.compliance_tolerance == 5e-4
+    assert problem_from_dict(problem_table(p)).optimize.compliance_tolerance == 5e-4
+    for bad in (-1e-3, 0.2, "0.001", float("nan")):
+        with pytest.raises(ValueError, match="optimize.compliance_tolerance"):
+            problem_from_dict(_coarse_mbb(compliance_tolerance=bad), source="t.toml")
+    # on the command line: one line, exit code 2, no results folder written
+    bad_file = tmp_path / "bad.toml"
+    text = MBB.read_text().replace("[optimize]", "[optimize]\ncompliance_tolerance = 0.5", 1)
+    bad_file.write_text(text)
+    out = tmp_path / "out"
+    run = subprocess.run([sys.executable, "-m", "topopt.cli", "optimize", str(bad_file),
+                          "--out", str(out)], capture_output=True, text=True)
+    assert run.returncode == 2
+    assert "optimize.compliance_tolerance" in run.stderr
+    assert len(run.stderr.strip().splitlines()) == 1 and not out.exists()
