@@ -110,7 +110,9 @@ class MultigridSolver:
     >>> K = Assembler(g, Ke, free).assemble(np.ones(g.n_elements))
     >>> s = MultigridSolver(grid=g, free_dofs=free, element_matrix=Ke, coarse_dofs=50)
     >>> u = s.solve(K, np.ones((free.size, 1)), moduli=np.ones(g.n_elements))
-    >>> bool(np.linalg.norm(K @ u - 1.0) < 1e-4 * np.sqrt(free.size))
+    >>> from scipy.sparse.linalg import spsolve
+    >>> ref = spsolve(K.tocsc(), np.ones(free.size))
+    >>> bool(abs(u.sum() - ref.sum()) < 1e-8 * ref.sum())  # compliance f.u, f = 1
     True
     """
 
