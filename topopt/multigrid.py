@@ -363,7 +363,10 @@ class _Coarsening:
         self._first_out = None
 
     def first(self, K0: np.ndarray, scale: np.ndarray) -> np.ndarray:
-        """Coarse element matrices for fine element matrices scale[e] * K0."""
+        """Coarse element matrices for fine element matrices scale[e] * K0.
+
+        The result is a buffer of this object, overwritten by the next call.
+        """
         nd = K0.shape[0]
         if self._K0 is None or not np.array_equal(self._K0, K0):
             self._K0 = K0.copy()

@@ -178,3 +178,39 @@ def test_bad_input_raises():
         opt.update(np.zeros(2), 0.0, np.zeros(2), np.zeros(1), np.zeros((2, 2)))
     with pytest.raises(ValueError, match="df0 must be finite"):
         opt.update(np.zeros(2), 0.0, np.array([np.nan, 0.0]), np.zeros(1), np.zeros((1, 2)))
+
+
+def test_dual_subproblem_with_an_infeasible_constraint_reaches_its_maximum():
+    # Regression: 500 variables of an MMA subproblem from the large 3D example (keep-in
+    # constraint infeasible within the move limits, so its multiplier passes the
+    # infeasibility cost 1000 and the dual is flat where no x is inside its box). The
+    # line search used to start at the full Newton step (1e13 here); 60 halvings did
+    # not bring it back and the dual stopped at lambda = (804, 188), value 355, with a
+    # gradient of 1.9. Reference: the KKT conditions of the concave dual (gradient zero
+    # for a positive multiplier; Svanberg, IJNME 24:359-373, 1987), checked here, and
+    # its value, which no other lambda may exceed.
+    from pathlib import Path
+
+    from topopt.optimizers import _solve_dual
+
+    d = np.load(Path(__file__).resolve().parents[1] / "data" / "mma-dual-flat.npz",
+                allow_pickle=False)
+    p0, q0, p, q, r = d["p0"], d["q0"], d["p"], d["q"], d["r"]
+    low, upp, alpha, beta, cost = d["low"], d["upp"], d["alpha"], d["beta"], float(d["cost"])
+
+    def dual(lam):
+        big_p, big_q = p0 + lam @ p, q0 + lam @ q
+        x = np.clip((np.sqrt(big_p) * low + np.sqrt(big_q) * upp)
+                    / (np.sqrt(big_p) + np.sqrt(big_q)), alpha, beta)
+        slack = np.maximum(lam - cost, 0.0)
+        value = (big_p @ (1 / (upp - x)) + big_q @ (1 / (x - low)) + lam @ r
+                 + (cost - lam) @ slack + 0.5 * slack @ slack)
+        return value, p @ (1 / (upp - x)) + q @ (1 / (x - low)) + r - slack
+
+    x, lam = _solve_dual(p0, q0, p, q, r, low, upp, alpha, beta, cost, d["lam0"])
+    value, grad = dual(lam)
+    assert np.all(lam > 0)
+    assert np.all(np.abs(grad) <= 1e-9 * (1 + np.abs(r)))
+    for other in ([804.24992133, 188.41149597], lam * 0.99, lam * 1.01):
+        assert dual(np.asarray(other))[0] <= value
+    assert np.all((x >= alpha) & (x <= beta))
