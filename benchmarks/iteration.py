@@ -126,6 +126,7 @@ def run_iteration_job(shape, kind, solver, iterations=2):
     from topopt.driver import build_filter_chain
     from topopt.objective import (
         ComplianceModel,
+        energy_compliances,
         simp_modulus,
         simp_modulus_derivative,
         volume_fraction,
@@ -157,8 +158,10 @@ def run_iteration_job(shape, kind, solver, iterations=2):
         U = np.zeros_like(model.forces)
         U[model.free] = Uf
         del K
-        compliance = float(np.einsum("dc,dc->", model.forces, U))
-        energy = model.element_energy(U).sum(axis=1)
+        case_energy = model.element_energy(U)
+        # the optimiser's compliance (ComplianceModel.evaluate), not f.u alone
+        compliance = float(energy_compliances(model.forces, U, moduli, case_energy).sum())
+        energy = case_energy.sum(axis=1)
         dE = simp_modulus_derivative(physical.ravel(), penalty=3.0, void_stiffness=1e-9)
         dc = chain.backward((-dE * energy).reshape(shape))
         dv = chain.backward(unit)

@@ -74,9 +74,20 @@ class ComplianceModel:
         self.solver = make_solver(solver or problem.optimize.solver, grid=grid, free_dofs=self.free,
                                   element_matrix=self.element_matrix)
 
-    def displacements(self, physical: np.ndarray) -> np.ndarray:
-        """Global displacements for every load case, shape (n_dofs, n_cases)."""
-        moduli = simp_modulus(physical.ravel(), penalty=self.penalty, void_stiffness=self.void_stiffness)
+    def moduli(self, physical: np.ndarray) -> np.ndarray:
+        """Relative element moduli of a physical density (flat)."""
+        return simp_modulus(np.ravel(physical), penalty=self.penalty,
+                            void_stiffness=self.void_stiffness)
+
+    def displacements(self, physical: np.ndarray, *, moduli: np.ndarray | None = None
+                      ) -> np.ndarray:
+        """Global displacements for every load case, shape (n_dofs, n_cases).
+
+        ``moduli`` (from :meth:`moduli`) saves computing them again when the caller has
+        them.
+        """
+        if moduli is None:
+            moduli = self.moduli(physical)
         # A matrix-free solver (multigrid with the element matrix) never needs K.
         K = None if getattr(self.solver, "matrix_free", False) else self.assembler.assemble(moduli)
         U = np.zeros_like(self.forces)
@@ -91,17 +102,32 @@ class ComplianceModel:
     def evaluate(self, physical: np.ndarray) -> Evaluation:
         """Compliance summed over load cases and its gradient in grid shape."""
         rho = np.asarray(physical, dtype=float)
-        U = self.displacements(rho)
-        moduli = simp_modulus(rho.ravel(), penalty=self.penalty, void_stiffness=self.void_stiffness)
+        moduli = self.moduli(rho)
+        U = self.displacements(rho, moduli=moduli)
         case_energy = self.element_energy(U)
-        # 2 f.u - u^T K u equals f.u for the exact u, and its error for an iterative u
-        # is -||u - u_h||_K^2: second order, where f.u alone has a first-order error
-        # after a warm start (potential energy identity; see topopt/multigrid.py).
-        case_c = 2.0 * np.einsum("dc,dc->c", self.forces, U) - moduli @ case_energy
+        case_c = energy_compliances(self.forces, U, moduli, case_energy)
         energy = case_energy.sum(axis=1)
         dE = simp_modulus_derivative(rho.ravel(), penalty=self.penalty, void_stiffness=self.void_stiffness)
         gradient = (-dE * energy).reshape(rho.shape)
         return Evaluation(float(case_c.sum()), case_c, gradient, U)
+
+
+def energy_compliances(forces: np.ndarray, U: np.ndarray, moduli: np.ndarray,
+                       case_energy: np.ndarray) -> np.ndarray:
+    """Compliance of each load case as 2 f.u - u^T K u.
+
+    Equal to f.u for the exact u; for an iterative u_h it is f.u - ||u - u_h||_K^2,
+    an error of second order where f.u alone errs to first order after a warm start
+    (principle of minimum potential energy; see topopt/multigrid.py). ``case_energy``
+    holds u_e^T K0 u_e per element and case, so u^T K u = moduli @ case_energy.
+
+    Examples
+    --------
+    >>> f = np.array([[1.0], [0.0]])
+    >>> energy_compliances(f, np.array([[0.5], [0.0]]), np.array([1.0]), np.array([[0.5]]))
+    array([0.5])
+    """
+    return 2.0 * np.einsum("dc,dc->c", forces, U) - moduli @ case_energy
 
 
 def volume_fraction(physical: np.ndarray) -> float:
