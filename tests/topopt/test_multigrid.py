@@ -203,7 +203,10 @@ def test_bracket_3d_optimisation_same_with_multigrid_and_direct():
 # --------------------------------------------------------------- matrix-free finest grid
 
 
-@pytest.mark.parametrize("shape", [(9, 6), (7, 5, 3), (8, 1, 5), (12, 7, 6)])
+@pytest.mark.parametrize("shape", [(9, 6), (7, 5, 3), (8, 1, 5), (12, 7, 6),
+                                   # rows of the slab split into blocks, the last one
+                                   # partly filled (PRODUCT_BLOCK = 512 elements)
+                                   (3, 30, 40), (3, 600)])
 def test_element_operator_equals_assembled_product(shape):
     # Identity: sum_e s_e K0 u_e applied element by element equals the assembled
     # stiffness matrix times u on the free dofs (definition of assembly; common
