@@ -271,57 +271,42 @@ class StructuredPattern:
 # --------------------------------------------------------------- matrix-free operator
 
 
-#: Elements per block of :func:`_element_product`. The block and its product with K0
-#: then stay in the core's cache (about 100 kB in double precision): with a whole slab
-#: per block (6,400 elements, 2.4 MB at 1e6 voxels) the product took 0.14-0.20 s at
-#: 160 x 80 x 80, with blocks of 256-512 elements 0.08-0.10 s (measured on the 2-core
-#: development machine, both precisions). 2D slabs are shorter than this: one block.
-PRODUCT_BLOCK = 512
-
-
 @numba.njit(parallel=True, fastmath=True, cache=True)
 def _element_product(u, scale, K0, local, dim, y):  # pragma: no cover - compiled
     """Product sum_e scale[e] * K0 u_e on the structured grid (u, y: (n0, n1, n2, dim)).
 
     Elements are processed by slabs of constant first index. Slab i writes only the
     node planes i and i + 1, so slabs of the same parity never write the same node and
-    run in parallel. Within a slab, whole rows of constant second index are taken
-    together up to :data:`PRODUCT_BLOCK` elements: their element vectors are gathered
-    into a block, the block is multiplied by K0 with one matrix product, and the result
-    is added back. The block has the precision of K0 (float32 halves the work of the
-    product; the sums into y stay in double).
+    run in parallel; each slab gathers its element vectors into a block, multiplies
+    the block by K0 with one matrix product, and adds the result back. The block has
+    the precision of K0 (float32 halves the work of the product; the sums into y stay
+    in double).
     """
     e0, e1, e2 = scale.shape
     n_local = local.shape[0]
     nd = n_local * dim
-    rows = max(1, min(e1, PRODUCT_BLOCK // e2))
     y[:] = 0.0
+    m = e1 * e2
     for parity in range(2):
         for t in numba.prange((e0 - parity + 1) // 2):
             i = 2 * t + parity
-            # Always the full block, so that np.dot gets a contiguous array (a sliced
-            # one is not handed to BLAS); rows past the last grid row hold zeros or
-            # the previous rows' values and their products are never read.
-            block = np.zeros((rows * e2, nd), dtype=K0.dtype)
-            for j0 in range(0, e1, rows):
-                j1 = min(j0 + rows, e1)
-                for j in range(j0, j1):
-                    for k in range(e2):
-                        row = (j - j0) * e2 + k
-                        s = scale[i, j, k]
-                        for ln in range(n_local):
-                            for a in range(dim):
-                                block[row, ln * dim + a] = s * u[i + local[ln, 0],
-                                                                  j + local[ln, 1],
-                                                                  k + local[ln, 2], a]
-                out = np.dot(block, K0)  # K0 is symmetric: row r of out is K0 @ (s u_e)
-                for j in range(j0, j1):
-                    for k in range(e2):
-                        row = (j - j0) * e2 + k
-                        for ln in range(n_local):
-                            for a in range(dim):
-                                y[i + local[ln, 0], j + local[ln, 1], k + local[ln, 2], a] += \
-                                    out[row, ln * dim + a]
+            block = np.empty((m, nd), dtype=K0.dtype)
+            for j in range(e1):
+                for k in range(e2):
+                    row = j * e2 + k
+                    s = scale[i, j, k]
+                    for ln in range(n_local):
+                        for a in range(dim):
+                            block[row, ln * dim + a] = s * u[i + local[ln, 0], j + local[ln, 1],
+                                                              k + local[ln, 2], a]
+            out = np.dot(block, K0)  # K0 is symmetric: row r of out is K0 @ (s u_e)
+            for j in range(e1):
+                for k in range(e2):
+                    row = j * e2 + k
+                    for ln in range(n_local):
+                        for a in range(dim):
+                            y[i + local[ln, 0], j + local[ln, 1], k + local[ln, 2], a] += \
+                                out[row, ln * dim + a]
 
 
 @numba.njit(parallel=True, cache=True)
