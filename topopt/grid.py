@@ -173,3 +173,29 @@ def region_mask(points: np.ndarray, region: Mapping, *, tol: float) -> np.ndarra
         dist = np.linalg.norm(points[:, across] - center, axis=1)
         inside &= dist <= float(region["radius"]) + tol
     return inside
+
+
+def resample(values: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+    """Element values of one grid carried over to a grid of ``shape`` on the same domain.
+
+    Linear interpolation between element centres, with the edge values held beyond the
+    outer centres (``scipy.ndimage.zoom``, order 1, ``grid_mode=True``: the elements are
+    cells spanning the domain, not samples at its corners). The result stays within the
+    range of ``values``; the same shape gives the values back unchanged.
+
+    Examples
+    --------
+    >>> resample(np.array([[0.0, 1.0]]), (1, 4))
+    array([[0.  , 0.25, 0.75, 1.  ]])
+    """
+    from scipy import ndimage
+
+    values = np.asarray(values, dtype=float)
+    shape = tuple(int(n) for n in shape)
+    if values.ndim != len(shape):
+        raise ValueError(f"resample: {values.ndim}D values for a {len(shape)}D grid")
+    if values.shape == shape:
+        return values.copy()
+    factors = [new / old for new, old in zip(shape, values.shape, strict=True)]
+    out = ndimage.zoom(values, factors, order=1, mode="nearest", grid_mode=True)
+    return np.clip(out, values.min(), values.max())

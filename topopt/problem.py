@@ -92,6 +92,8 @@ class OptimizeSettings:
     checkpoint_every: int = 10
     projection: Projection | None = None
     min_member_size: float | None = None
+    #: results folder (or its result.npz) whose design starts the run; absolute path
+    start_from: str | None = None
 
     def __post_init__(self) -> None:
         _field_in(self, "volume_fraction", 0.0, 1.0, low_open=True, high_open=True)
@@ -111,6 +113,9 @@ class OptimizeSettings:
                              f"{', '.join(repr(m) for m in METHODS)}, got {self.method!r}")
         if not isinstance(self.solver, str):
             raise TypeError(f"OptimizeSettings.solver: expected a string, got {self.solver!r}")
+        if self.start_from is not None and not isinstance(self.start_from, str):
+            raise TypeError(f"OptimizeSettings.start_from: expected a path string, "
+                            f"got {self.start_from!r}")
 
 
 @dataclass(frozen=True)
@@ -507,6 +512,8 @@ def problem_table(problem: Problem) -> dict:
                          ("compliance_tolerance", 0.0), ("solver", "auto"),
                          ("checkpoint_every", 10)):
         _put(opt, key, getattr(settings, key), default)
+    if settings.start_from is not None:
+        opt["start_from"] = settings.start_from
     if settings.min_member_size is None:
         opt.pop("min_member_size", None)
         _put(opt, "filter_radius", settings.filter_radius, radius_default)
@@ -660,9 +667,29 @@ TOP_KEYS = {"name", "units", "domain", "material", "restraints", "loads", "passi
 OPTIMIZE_KEYS = {
     "volume_fraction", "filter_radius", "penalty", "method", "max_iterations",
     "change_tolerance", "compliance_tolerance", "move_limit", "solver", "checkpoint_every",
-    "projection", "min_member_size",
+    "projection", "min_member_size", "start_from",
 }
 METHODS = ("oc", "mma")
+
+
+def _start_path(r, opt: Mapping, source: str) -> str | None:
+    """``optimize.start_from`` as an absolute path (relative ones from the problem's folder).
+
+    Only the form is checked here; the design itself is read when a run starts
+    (:func:`topopt.results.read_start_design`), so a saved problem stays readable after
+    its start folder is gone.
+    """
+    value = r.string(opt, "start_from", "optimize.start_from", default=None)
+    if value is None:
+        return None
+    if not value.strip() or "\0" in value:
+        raise r.fail("optimize.start_from", "expected the path of a results folder or its "
+                     "result.npz")
+    path = Path(value).expanduser()
+    if not path.is_absolute():
+        base = Path(source).parent if source and not source.startswith("<") else Path.cwd()
+        path = base / path
+    return str(path.resolve())
 
 
 def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
@@ -913,6 +940,7 @@ def problem_from_dict(data: Mapping, *, source: str = "<problem>") -> Problem:
         projection=projection,
         min_member_size=r.number(opt, "min_member_size", "optimize.min_member_size",
                                  default=None, low=0.0, low_open=True),
+        start_from=_start_path(r, opt, source),
     )
     if build.active and build.keep_in == "held" and solid.any() and optimize.method != "mma":
         raise r.fail("optimize.method", 'keep-in regions held up by the design need method = '

@@ -525,6 +525,46 @@ def read_results(folder: str | Path, *, problem=None, need_summary: bool = True)
                          summary=summary)
 
 
+#: Largest spread of the per-axis scale factors between a start design's grid and the
+#: problem's grid (rounding the element counts of the same domain stays well inside it).
+START_SHAPE_SPREAD = 0.1
+
+
+def read_start_design(path: str | Path, shape: tuple[int, ...]) -> np.ndarray:
+    """The design variables of an earlier run, carried over to a grid of ``shape``.
+
+    ``path`` is a results folder or its ``result.npz``; its ``design`` array must
+    describe the same domain on any grid: the same number of axes, and per-axis scale
+    factors that agree within :data:`START_SHAPE_SPREAD`. Values are interpolated
+    (:func:`topopt.grid.resample`) and clipped to [0, 1].
+
+    Raises
+    ------
+    ResultsError
+        One line naming the file for a missing, damaged or unsuitable design.
+    """
+    from topopt.grid import resample
+
+    path = Path(path)
+    file = path / "result.npz" if path.is_dir() else path
+    design = read_arrays(file, ["design"])["design"]
+    if design.dtype.kind not in "biuf":
+        raise ResultsError(f"{file}: the design holds {design.dtype} values, not numbers")
+    shape = tuple(int(n) for n in shape)
+    if design.ndim != len(shape) or 0 in design.shape:
+        raise ResultsError(f"{file}: the design has shape {design.shape}, expected "
+                           f"{len(shape)} axes like the domain {shape}")
+    design = design.astype(float)
+    if not np.all(np.isfinite(design)):
+        raise ResultsError(f"{file}: the design holds NaN or infinite values")
+    factors = [new / old for new, old in zip(shape, design.shape, strict=True)]
+    if max(factors) > (1.0 + START_SHAPE_SPREAD) * min(factors):
+        raise ResultsError(f"{file}: a design of shape {design.shape} does not cover the "
+                           f"domain {shape} (axes scaled by "
+                           f"{', '.join(f'{f:.3g}' for f in factors)}; expected one factor)")
+    return np.clip(resample(design, shape), 0.0, 1.0)
+
+
 def check_finished(folder: str | Path, problem) -> None:
     """Raise :class:`ResultsError` unless ``folder`` holds a complete, readable result."""
     read_results(folder, problem=problem, need_summary=True)
