@@ -30,7 +30,7 @@ PACKAGES = ("filters", "topopt")
 LAYERS: list[tuple[str, tuple[str, ...]]] = [
     ("array transforms", ("filters.chain", "filters.density", "filters.projection",
                           "filters.direction", "filters.printability", "filters")),
-    ("foundation", ("topopt.version", "topopt.files", "topopt.grid", "topopt.parallel",
+    ("foundation", ("topopt.version", "topopt.files", "topopt.arrays", "topopt.grid", "topopt.parallel",
                     "topopt.interrupt", "topopt.memory")),
     ("finite elements", ("topopt.elements", "topopt.assembly", "topopt.multigrid",
                          "topopt.solvers")),

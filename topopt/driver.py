@@ -222,7 +222,7 @@ def initial_design(problem) -> np.ndarray:
     solid, void = problem.passive_solid, problem.passive_void
     free = ~(solid | void)
     if problem.optimize.start_from is not None:
-        from topopt.results import read_start_design
+        from topopt.arrays import read_start_design
 
         x = read_start_design(problem.optimize.start_from, problem.grid.shape)
         x[solid] = 1.0

@@ -17,9 +17,10 @@ import numpy as np
 import pytest
 
 from topopt import load_problem, optimize
+from topopt.arrays import ResultsError, read_start_design
 from topopt.grid import resample
 from topopt.problem import problem_from_dict, problem_table
-from topopt.results import ResultsError, read_start_design, write_results
+from topopt.results import write_results
 
 EXAMPLES = Path(__file__).resolve().parents[2] / "examples"
 MBB = EXAMPLES / "mbb-beam.toml"

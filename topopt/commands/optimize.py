@@ -54,7 +54,7 @@ def run(args: argparse.Namespace) -> int:
 
     problem = load_problem(args.problem)  # validate (and budget memory) before the folder
     if problem.optimize.start_from is not None and not args.resume:
-        from topopt.results import read_start_design
+        from topopt.arrays import read_start_design
 
         read_start_design(problem.optimize.start_from, problem.grid.shape)  # before the folder
     if args.solver is not None:
