@@ -21,6 +21,7 @@ from filters.chain import FilterChain, FixedValues
 from filters.density import density_filter
 from filters.projection import HeavisideProjection, heaviside_projection
 from topopt import interrupt, robust
+from topopt.arrays import read_start_design
 from topopt.objective import ComplianceModel, grey_level, volume_fraction
 from topopt.optimizers import OPTIMIZERS, oc_update
 
@@ -222,8 +223,6 @@ def initial_design(problem) -> np.ndarray:
     solid, void = problem.passive_solid, problem.passive_void
     free = ~(solid | void)
     if problem.optimize.start_from is not None:
-        from topopt.arrays import read_start_design
-
         x = read_start_design(problem.optimize.start_from, problem.grid.shape)
         x[solid] = 1.0
         x[void] = 0.0
