@@ -204,6 +204,26 @@ def _csr_matvec_serial(indptr, indices, data, x, y):  # pragma: no cover - compi
 SERIAL_NNZ = 1 << 20
 
 
+@numba.njit(parallel=True, cache=True)
+def _csr_diagonal_kernel(indptr, indices, data, out):  # pragma: no cover - compiled
+    for i in numba.prange(indptr.size - 1):
+        out[i] = 0.0
+        for t in range(indptr[i], indptr[i + 1]):
+            if indices[t] == i:
+                out[i] = data[t]
+                break
+
+
+def _csr_diagonal(A: sparse.csr_matrix) -> np.ndarray:
+    """Diagonal of a CSR matrix in double precision, on numba's threads.
+
+    scipy's ``diagonal`` took 0.08 s per hierarchy update at 1e6 fine elements.
+    """
+    out = np.empty(A.shape[0])
+    _csr_diagonal_kernel(A.indptr, A.indices, A.data, out)
+    return out
+
+
 def _matvec(A: sparse.csr_matrix, x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     y = np.empty(A.shape[0]) if out is None else out
     kernel = _csr_matvec_serial if A.nnz < SERIAL_NNZ else _csr_matvec
@@ -236,7 +256,7 @@ class _Level:
             self.inv_diag = np.divide(1.0, diag, out=np.zeros_like(diag), where=diag != 0)
             self.n = operator.n
         else:
-            self.inv_diag = 1.0 / A.diagonal().astype(float)
+            self.inv_diag = 1.0 / _csr_diagonal(A)
             self.n = A.shape[0]
         # The Chebyshev smoother needs an upper bound of the spectrum of D^-1 A: a
         # smaller value amplifies the modes above it and can make the V-cycle
@@ -286,7 +306,9 @@ def _jacobi_spectral_radius(level: _Level, *, start=None, iterations: int = 12):
     y = np.empty_like(x)
     lam = 1.0
     for _ in range(iterations):
-        level.matvec(x, y)
+        # single precision on a matrix-free finest grid: the smoother applies that
+        # operator, and the product is cheaper
+        level.matvec(x, y, single=True)
         y *= level.inv_diag
         lam = float(np.linalg.norm(y))
         x, y = y / lam, x
@@ -310,41 +332,58 @@ def _combine_rows(S, M, out):  # pragma: no cover - compiled
 
 
 @numba.njit(parallel=True, cache=True)
-def _galerkin_children(mats, children, q, out):  # pragma: no cover - compiled
-    """out[e] += sum_c Q_c^T mats[children[c, e]] Q_c with Q_c = q[c] (x) I_dim.
+def _galerkin_children(mats, children, fine_node, coarse_node, weight, n_weights, dim,
+                       out):  # pragma: no cover - compiled
+    """out[e] += sum_c Q_c^T mats[children[c, e]] Q_c with Q_c = q_c (x) I_dim.
 
-    Written with the node weights instead of the dof matrices Q_c: a third of the
-    multiplications of two dense nd x nd products, and the zero weights (children
-    share few nodes with far corners of the parent) are skipped.
+    The node weights q_c are given as lists of their nonzeros (t < n_weights[c]):
+    q_c[fine_node[c, t], coarse_node[c, t]] = weight[c, t]; a child shares few nodes
+    with the far corners of its parent, so 27 of the 64 weights of an H8 child are
+    nonzero. Both products are done as sums of whole rows, using the symmetry of the
+    matrices: V = Q^T M row by row, then Q^T V^T = Q^T M Q. Every inner loop runs over
+    a contiguous row of nd entries (measured at 1e6 fine elements: 0.41 s per update
+    with the weights tested inside the innermost loop, the earlier form).
     """
     n_children, n_coarse = children.shape
-    nn = q.shape[1]
     nd = mats.shape[1]
-    dim = nd // nn
     for e in numba.prange(n_coarse):
-        t = np.empty((nd, nn, dim))  # t[r, b, j] = sum_m M[r, m dim + j] q[m, b]
+        v = np.empty((nd, nd))
+        u = np.empty((nd, nd))
         for c in range(n_children):
             f = children[c, e]
             if f < 0:
                 continue
-            for r in range(nd):
-                for b in range(nn):
-                    for j in range(dim):
-                        acc = 0.0
-                        for m in range(nn):
-                            w = q[c, m, b]
-                            if w != 0.0:
-                                acc += mats[f, r, m * dim + j] * w
-                        t[r, b, j] = acc
-            for a in range(nn):
-                for k in range(nn):
-                    w = q[c, k, a]
-                    if w == 0.0:
-                        continue
-                    for i in range(dim):
-                        for b in range(nn):
-                            for j in range(dim):
-                                out[e, a * dim + i, b * dim + j] += w * t[k * dim + i, b, j]
+            v[:] = 0.0
+            for t in range(n_weights[c]):
+                w = weight[c, t]
+                src = fine_node[c, t] * dim
+                dst = coarse_node[c, t] * dim
+                for j in range(dim):
+                    for y in range(nd):
+                        v[dst + j, y] += w * mats[f, src + j, y]
+            for x in range(nd):
+                for y in range(nd):
+                    u[x, y] = v[y, x]
+            for t in range(n_weights[c]):
+                w = weight[c, t]
+                src = fine_node[c, t] * dim
+                dst = coarse_node[c, t] * dim
+                for i in range(dim):
+                    for y in range(nd):
+                        out[e, dst + i, y] += w * u[src + i, y]
+
+
+def _weight_lists(q: np.ndarray):
+    """Nonzeros of node-weight matrices q (n_children, nn, nn) as padded lists."""
+    count = (q != 0).sum(axis=(1, 2))
+    width = int(count.max())
+    fine = np.zeros((q.shape[0], width), dtype=np.int64)
+    coarse = np.zeros_like(fine)
+    weight = np.zeros((q.shape[0], width))
+    for c in range(q.shape[0]):
+        m, b = np.nonzero(q[c])
+        fine[c, :m.size], coarse[c, :m.size], weight[c, :m.size] = m, b, q[c, m, b]
+    return fine, coarse, weight, count.astype(np.int64)
 
 
 class _Coarsening:
@@ -407,11 +446,12 @@ class _Coarsening:
         if self._node_weights is None:
             # Q_c = q_c (x) I_dim: the node weights q_c are all the kernel needs
             dim = len(self.shape)
-            self._node_weights = np.stack([Q[::dim, ::dim] for _, Q in self.children])
+            self._node_weights = _weight_lists(
+                np.stack([Q[::dim, ::dim] for _, Q in self.children]))
             self._child_table = np.stack([child for child, _ in self.children])
         out = np.zeros((self.n_coarse,) + mats.shape[1:])
         _galerkin_children(np.ascontiguousarray(mats), self._child_table,
-                           self._node_weights, out)
+                           *self._node_weights, len(self.shape), out)
         return out
 
     def _add_to_parents(self, out, elements, matrices):
