@@ -684,7 +684,7 @@ def _chebyshev_step_py(x, d, r, Ad, inv_diag, a, c):  # pragma: no cover - compi
 
 
 def _chebyshev_start_zero_py(b, x, r, d, inv_diag, scale):  # pragma: no cover - compiled
-    """x = 0, r = b, d = scale D^-1 b."""
+    """Set x = 0, r = b, d = scale D^-1 b."""
     for i in numba.prange(b.size):
         x[i] = 0.0
         r[i] = b[i]
@@ -692,7 +692,7 @@ def _chebyshev_start_zero_py(b, x, r, d, inv_diag, scale):  # pragma: no cover -
 
 
 def _chebyshev_start_py(b, Ad, r, d, inv_diag, scale):  # pragma: no cover - compiled
-    """r = b - A x (A x given in Ad), d = scale D^-1 r."""
+    """Set r = b - A x (A x given in Ad), d = scale D^-1 r."""
     for i in numba.prange(b.size):
         ri = b[i] - Ad[i]
         r[i] = ri
@@ -705,14 +705,14 @@ def _add_py(x, d):  # pragma: no cover - compiled
 
 
 def _add_and_subtract_py(x, d, r, Ad):  # pragma: no cover - compiled
-    """x += d, r -= Ad."""
+    """Add d to x and subtract Ad from r."""
     for i in numba.prange(x.size):
         x[i] += d[i]
         r[i] -= Ad[i]
 
 
 def _cg_step_py(x, r, p, Ap, alpha, b):  # pragma: no cover - compiled
-    """x += alpha p, r -= alpha Ap; returns b . x (the energy of the stopping rule)."""
+    """Step x += alpha p, r -= alpha Ap; return b . x (the stopping rule's energy)."""
     acc = 0.0
     for i in numba.prange(x.size):
         x[i] += alpha * p[i]
@@ -722,7 +722,7 @@ def _cg_step_py(x, r, p, Ap, alpha, b):  # pragma: no cover - compiled
 
 
 def _direction_py(p, z, beta):  # pragma: no cover - compiled
-    """p = z + beta p."""
+    """Set p = z + beta p."""
     for i in numba.prange(p.size):
         p[i] = z[i] + beta * p[i]
 
