@@ -274,7 +274,10 @@ class Problem:
 
     def free_dofs(self) -> np.ndarray:
         """Dofs left in the system after removing the restrained ones."""
-        return np.setdiff1d(np.arange(self.grid.n_dofs), self.fixed_dofs())
+        # a mask, not np.setdiff1d: that sorts all dofs (1.7 s at 1e6 H8 elements)
+        free = np.ones(self.grid.n_dofs, dtype=bool)
+        free[self.fixed_dofs()] = False
+        return np.flatnonzero(free)
 
 
 # ---------------------------------------------------------------------------- helpers
