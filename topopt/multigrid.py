@@ -671,9 +671,10 @@ def _factorise(A: sparse.spmatrix):
 
 # Vector kernels of the smoother and of CG. Each fuses what would be two to four numpy
 # passes over the vectors into one threaded pass: at 1e6 H8 elements a pass over a
-# vector of the finest grid (3e6 dofs) takes 3-5 ms, and the numpy form spent about
-# 35 ms of each 350 ms CG iteration on them (profile of the 1e6 bracket, first 12
-# optimisation iterations).
+# vector of the finest grid (3e6 dofs) takes 3-5 ms, and the numpy form spent about a
+# tenth of each CG iteration on them (profile of the 1e6 bracket). The gain is modest
+# (measured on that bracket: 2.6 s against 3.2 s over six solves of 40 s of products;
+# benchmarks/notes.md) but costs nothing in accuracy.
 
 
 def _chebyshev_step_py(x, d, r, Ad, inv_diag, a, c):  # pragma: no cover - compiled
