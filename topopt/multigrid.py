@@ -56,6 +56,17 @@ from topopt.grid import LOCAL_NODES, Grid
 #: Default relative energy-norm tolerance of the CG iteration (see module docstring).
 DEFAULT_TOLERANCE = 1e-5
 
+#: Tolerance for the iterates of the design loop. The optimiser needs sensitivities and
+#: a compliance good enough for the stop rules, not compliances to 1e-8; the reported
+#: design is solved again at DEFAULT_TOLERANCE (the accuracy of the analysis tied to what
+#: the optimisation needs: Amir, Aage & Lazarov, Struct Multidisc Optim 49:815-829,
+#: 2014). Measured on the 1e6-voxel hoist bracket near convergence (8 iterations from
+#: the same state): 4 CG iterations per solve instead of 9-10, 4.0 s per design
+#: iteration instead of 5.0, compliances equal to 5e-7; a 128,000-voxel version of it
+#: ran to convergence in 253 iterations at 418.6 N mm against 261 at 418.1 with 1e-5,
+#: the two histories within 0.2 % of each other over the first 160 iterations.
+LOOP_TOLERANCE = 1e-4
+
 #: Degree of the Chebyshev smoother on the finest grid (the coarser grids use the
 #: ``degree`` of :func:`multigrid_cg`, 2). One step before and one after the coarse
 #: correction costs two fine-grid products instead of four; CG then needs a few more

@@ -79,19 +79,21 @@ class ComplianceModel:
         return simp_modulus(np.ravel(physical), penalty=self.penalty,
                             void_stiffness=self.void_stiffness)
 
-    def displacements(self, physical: np.ndarray, *, moduli: np.ndarray | None = None
-                      ) -> np.ndarray:
+    def displacements(self, physical: np.ndarray, *, moduli: np.ndarray | None = None,
+                      loop: bool = False) -> np.ndarray:
         """Global displacements for every load case, shape (n_dofs, n_cases).
 
         ``moduli`` (from :meth:`moduli`) saves computing them again when the caller has
-        them.
+        them. ``loop``: an iterate of the design loop (an iterative solver may stop at
+        its looser loop tolerance); everything reported is solved with ``loop=False``.
         """
         if moduli is None:
             moduli = self.moduli(physical)
         # A matrix-free solver (multigrid with the element matrix) never needs K.
         K = None if getattr(self.solver, "matrix_free", False) else self.assembler.assemble(moduli)
         U = np.zeros_like(self.forces)
-        U[self.free] = self.solver.solve(K, self.forces[self.free], moduli=moduli).reshape(
+        U[self.free] = self.solver.solve(K, self.forces[self.free], moduli=moduli,
+                                          loop=loop).reshape(
             self.free.size, -1)
         return U
 
@@ -99,11 +101,14 @@ class ComplianceModel:
         """u_e^T K0_e u_e per element and load case, shape (n_elements, n_cases)."""
         return element_energies(U, self.grid.element_dofs, self.element_matrix)
 
-    def evaluate(self, physical: np.ndarray) -> Evaluation:
-        """Compliance summed over load cases and its gradient in grid shape."""
+    def evaluate(self, physical: np.ndarray, *, loop: bool = False) -> Evaluation:
+        """Compliance summed over load cases and its gradient in grid shape.
+
+        ``loop``: an iterate of the design loop (see :meth:`displacements`).
+        """
         rho = np.asarray(physical, dtype=float)
         moduli = self.moduli(rho)
-        U = self.displacements(rho, moduli=moduli)
+        U = self.displacements(rho, moduli=moduli, loop=loop)
         case_energy = self.element_energy(U)
         case_c = energy_compliances(self.forces, U, moduli, case_energy)
         energy = case_energy.sum(axis=1)

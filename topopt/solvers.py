@@ -47,8 +47,9 @@ class CholmodSolver:
         self._factor = None
         self.iterations = 0
 
-    def solve(self, K: sparse.spmatrix, F: np.ndarray, *, moduli=None) -> np.ndarray:
-        """Solve K U = F."""
+    def solve(self, K: sparse.spmatrix, F: np.ndarray, *, moduli=None,
+              loop: bool = False) -> np.ndarray:
+        """Solve K U = F (exactly, ``loop`` or not)."""
         from sksparse.cholmod import analyze
 
         K = sparse.csc_matrix(K)
@@ -67,8 +68,9 @@ class ScipySolver:
                  element_matrix: np.ndarray | None = None):
         self.iterations = 0
 
-    def solve(self, K: sparse.spmatrix, F: np.ndarray, *, moduli=None) -> np.ndarray:
-        """Solve K U = F."""
+    def solve(self, K: sparse.spmatrix, F: np.ndarray, *, moduli=None,
+              loop: bool = False) -> np.ndarray:
+        """Solve K U = F (exactly, ``loop`` or not)."""
         lu = sla.splu(
             sparse.csc_matrix(K),
             permc_spec="MMD_AT_PLUS_A",
@@ -94,7 +96,8 @@ class MultigridSolver:
         Element matrix of the solid material; with the ``moduli`` passed to
         :meth:`solve` the coarse operators are built element by element.
     tolerance : float
-        Relative energy-norm error at which CG stops.
+        Relative energy-norm error at which CG stops (the looser
+        :data:`~topopt.multigrid.LOOP_TOLERANCE` inside the design loop, if larger).
     max_iterations : int
         CG iteration limit; reaching it raises ``RuntimeError``.
     coarse_dofs : int
@@ -122,7 +125,7 @@ class MultigridSolver:
                  element_matrix: np.ndarray | None = None,
                  tolerance: float | None = None, max_iterations: int = 1000,
                  coarse_dofs: int = 6000):
-        from topopt.multigrid import DEFAULT_TOLERANCE, MultigridHierarchy
+        from topopt.multigrid import DEFAULT_TOLERANCE, LOOP_TOLERANCE, MultigridHierarchy
 
         if grid is None or free_dofs is None:
             raise ValueError("solver 'multigrid' needs the grid and the free dofs")
@@ -134,12 +137,18 @@ class MultigridSolver:
         self._grid, self._free, self._coarse_dofs = grid, free_dofs, coarse_dofs
         self.element_matrix = element_matrix
         self.tolerance = DEFAULT_TOLERANCE if tolerance is None else float(tolerance)
+        self.loop_tolerance = max(self.tolerance, LOOP_TOLERANCE)
         self.max_iterations = int(max_iterations)
         self.iterations = 0
         self._previous: np.ndarray | None = None
 
-    def solve(self, K: sparse.spmatrix, F: np.ndarray, *, moduli=None) -> np.ndarray:
-        """Solve K U = F (iterations of all load cases summed in ``iterations``)."""
+    def solve(self, K: sparse.spmatrix, F: np.ndarray, *, moduli=None,
+              loop: bool = False) -> np.ndarray:
+        """Solve K U = F (iterations of all load cases summed in ``iterations``).
+
+        ``loop``: an iterate of the design loop, solved to ``loop_tolerance`` instead of
+        ``tolerance`` (see :data:`topopt.multigrid.LOOP_TOLERANCE`).
+        """
         # The vector operations of CG, the small coarse factorisation and the batched
         # 24 x 24 products are too small for threaded BLAS: on 2 cores, OpenBLAS threads
         # made a 33,000-dof solve 1.5-3x slower. The compiled matrix products keep their
@@ -147,9 +156,9 @@ class MultigridSolver:
         from threadpoolctl import threadpool_limits
 
         with threadpool_limits(limits=1, user_api="blas"):
-            return self._solve(K, F, moduli)
+            return self._solve(K, F, moduli, self.loop_tolerance if loop else self.tolerance)
 
-    def _solve(self, K, F, moduli):
+    def _solve(self, K, F, moduli, tolerance):
         from topopt.multigrid import MultigridHierarchy, multigrid_cg
 
         F = np.asarray(F, dtype=float)
@@ -172,7 +181,7 @@ class MultigridSolver:
         for c in range(F2.shape[1]):
             x0 = self._previous[:, c] if warm else None
             U[:, c], its, ok = multigrid_cg(self.hierarchy, F2[:, c], x0,
-                                            tolerance=self.tolerance,
+                                            tolerance=tolerance,
                                             max_iterations=self.max_iterations)
             self.iterations += its
             if not ok:
