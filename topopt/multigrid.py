@@ -42,6 +42,8 @@ and CG preconditioned by one V-cycle. Our own choices:
   a warm start (f.u_k alone: 1.1e-8) and 5.4e-9 from a cold one, in 22 and 64 CG
   iterations against 31 and 141 at 1e-6. The estimate r^T M^-1 r is optimistic on such
   designs (5.4e-9 is the square of 7e-5, not of 1e-5), which is why the margin is kept.
+  The iterates of the design loop are solved to the looser ``LOOP_TOLERANCE`` (1e-4);
+  every reported value is solved again to the default.
 """
 
 from __future__ import annotations

@@ -351,7 +351,9 @@ def test_design_loop_iterates_are_solved_looser_and_results_tightly():
     # DEFAULT_TOLERANCE. Reference: the direct solver (CHOLMOD, SuperLU without it).
     # A loop iterate's compliance errs by the squared energy-norm error (second order;
     # the estimate was optimistic by up to 7x on the large example, so (7e-4)^2 = 5e-7
-    # is allowed); its gradient by the first power.
+    # is allowed); its gradient by the first power. Measured: compliance up to 5.6e-8,
+    # gradient up to 1.8e-4 of its largest entry, 8 CG iterations per warm solve
+    # against 12-15.
     from pathlib import Path
 
     from topopt import load_problem
@@ -375,7 +377,7 @@ def test_design_loop_iterates_are_solved_looser_and_results_tightly():
             loop_its += loop.solver.iterations
             tight_its += tight.solver.iterations
         assert abs(a.compliance - b.compliance) <= 5e-7 * b.compliance
-        assert np.abs(a.gradient - b.gradient).max() <= 1e-2 * np.abs(b.gradient).max()
+        assert np.abs(a.gradient - b.gradient).max() <= 1e-3 * np.abs(b.gradient).max()
         rho = np.clip(rho + 0.02 * (rng.random(rho.shape) - 0.5), 0.0, 1.0)
     assert loop_its < tight_its
     # the same model, asked for a reported value, solves to the default tolerance again
