@@ -64,8 +64,8 @@ DEFAULT_TOLERANCE = 1e-5
 #: the optimisation needs: Amir, Aage & Lazarov, Struct Multidisc Optim 49:815-829,
 #: 2014). Measured on the 1e6-voxel hoist bracket near convergence (8 iterations from
 #: the same state): 4 CG iterations per solve instead of 9-10, 4.0 s per design
-#: iteration instead of 5.0, compliances equal to 5e-7; a 128,000-voxel version of it
-#: ran to convergence in 253 iterations at 418.6 N mm against 261 at 418.1 with 1e-5,
+#: iteration instead of 5.2 (means of 7), compliances equal to 5e-7; a 128,000-voxel
+#: version of it ran to convergence in 253 iterations at 418.6 N mm against 261 at 418.1 with 1e-5,
 #: the two histories within 0.2 % of each other over the first 160 iterations.
 LOOP_TOLERANCE = 1e-4
 
