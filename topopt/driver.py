@@ -393,11 +393,15 @@ def optimize(
                 x = x_new
                 iteration += 1
                 history.append(row)
+                drift = compliance_drift(history, STALL_WINDOW)
                 if bar is not None:
                     bar.update(1)
-                    bar.set_postfix(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
+                    shown = dict(c=f"{ev.compliance:.4g}", vol=f"{vol:.3f}", change=f"{change:.3f}")
+                    if settings.compliance_tolerance > 0.0 and drift is not None:
+                        # how far the compliance rule is from firing, on a long run
+                        shown["spread"] = f"{drift:.1e}"
+                    bar.set_postfix(**shown)
                 # with continuation, only a still design at the final beta counts as converged
-                drift = compliance_drift(history, STALL_WINDOW)
                 stalled = (settings.compliance_tolerance > 0.0 and drift is not None
                            and drift < settings.compliance_tolerance)
                 if ((change < settings.change_tolerance or stalled)

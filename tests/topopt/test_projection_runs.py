@@ -497,6 +497,18 @@ def test_compliance_drift_ignores_windows_across_a_beta_change():
     assert compliance_drift([{"compliance": 5.0}] * 11, 10) == 0.0  # no projection column
 
 
+def test_progress_bar_shows_the_compliance_spread_when_the_rule_is_on(capsys):
+    # a long run tells its user how far the compliance rule is from firing
+    data = _coarse_mbb(method="mma", projection=dict(beta_start=1.0, beta_max=1.0),
+                       compliance_tolerance=1e-3)
+    data["optimize"]["max_iterations"] = 14        # the spread exists from iteration 11
+    optimize(problem_from_dict(data, source="t.toml"), progress=True)
+    assert "spread=" in capsys.readouterr().err
+    data["optimize"].pop("compliance_tolerance")
+    optimize(problem_from_dict(data, source="t.toml"), progress=True)
+    assert "spread=" not in capsys.readouterr().err
+
+
 def test_compliance_drift_is_the_spread_of_the_window_not_its_ends():
     # exact arithmetic: a compliance that dips by 2 % and climbs back has moved, though
     # its ends agree; a steady creep gives the same value either way
